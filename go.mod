@@ -1,0 +1,3 @@
+module sparsewatch
+
+go 1.26

@@ -1,0 +1,153 @@
+package monitor
+
+import (
+	"fmt"
+	"math"
+)
+
+// Policy names a sampling policy: which q streams to read at the next frame.
+type Policy string
+
+// The sampling policies (METHODS.md section 4). Oracle is for simulation only:
+// it needs Config.Oracle, the set of truly changed streams.
+const (
+	Adaptive Policy = "adaptive" // read the q largest local statistics, compensate the rest
+	Thompson Policy = "thompson" // read the q largest Gamma(eps+L, 1) draws
+	Spatial  Policy = "spatial"  // rank by max(L, a * max of the 8 neighbours' L)
+	Random   Policy = "random"   // q streams uniformly at random
+	Stride   Policy = "stride"   // every stream on every k-th frame, k = ceil(m/q)
+	Full     Policy = "full"     // every stream, every frame
+	Oracle   Policy = "oracle"   // exactly the changed streams (simulation bound)
+)
+
+// Policies lists every policy a user may pick (Oracle excluded).
+var Policies = []Policy{Adaptive, Thompson, Spatial, Random, Stride, Full}
+
+// ParsePolicy returns the policy named s, or an error listing the choices.
+func ParsePolicy(s string) (Policy, error) {
+	for _, p := range append(Policies, Oracle) {
+		if string(p) == s {
+			return p, nil
+		}
+	}
+	return "", fmt.Errorf("monitor: policy %q unknown (choose adaptive, thompson, spatial, random, stride, full)", s)
+}
+
+// Config is everything an Engine needs. The zero values of the optional
+// fields select the documented defaults (see Defaults).
+type Config struct {
+	Width, Height int     // stream grid; m = Width*Height streams, index y*Width+x
+	Budget        int     // q: streams read per frame, 1 <= q <= m
+	TopR          int     // r: local statistics summed into G, 1 <= r <= m
+	Shift         float64 // d: design shift in noise units (default 1)
+	Policy        Policy  // default Adaptive
+
+	// Compensation c added to U and D of every unread stream each frame.
+	// CompFraction sets it as a fraction of the stability ceiling
+	// c_max = q d^2 / (2 (m - q)); Compensation, when > 0, sets it directly.
+	CompFraction float64 // default 0.25
+	Compensation float64
+
+	Limit      float64 // h: alarm when G >= h; 0 means not calibrated (never alarms)
+	Hysteresis float64 // an episode ends when G < Hysteresis*h (default 0.5)
+	Restart    bool    // reset every statistic after an alarm instead of hysteresis
+
+	SpatialWeight float64 // a in (0,1) for the spatial policy (default 0.5)
+	ThompsonEps   float64 // eps in Gamma(eps+L,1) for thompson (default 1)
+
+	FirstFrame int     // frame index reported for the first Step (e.g. after reference frames)
+	Seed       uint64  // random source for random/thompson/stride phase
+	Oracle     []int32 // changed streams, for the oracle policy only
+}
+
+// Streams returns m.
+func (c Config) Streams() int { return c.Width * c.Height }
+
+// CompMax returns the stability ceiling c_max = q d^2 / (2 (m - q)) of the
+// compensation (METHODS.md section 4); +Inf when every stream is read.
+func (c Config) CompMax() float64 {
+	m, q := c.Streams(), c.Budget
+	if q >= m {
+		return math.Inf(1)
+	}
+	return float64(q) * c.Shift * c.Shift / (2 * float64(m-q))
+}
+
+// Defaults returns c with every unset optional field filled in.
+func (c Config) Defaults() Config {
+	if c.Shift == 0 {
+		c.Shift = 1
+	}
+	if c.Policy == "" {
+		c.Policy = Adaptive
+	}
+	if c.CompFraction == 0 && c.Compensation == 0 {
+		c.CompFraction = 0.25
+	}
+	if c.Hysteresis == 0 {
+		c.Hysteresis = 0.5
+	}
+	if c.SpatialWeight == 0 {
+		c.SpatialWeight = 0.5
+	}
+	if c.ThompsonEps == 0 {
+		c.ThompsonEps = 1
+	}
+	return c
+}
+
+// Comp returns the absolute compensation c the engine will use.
+func (c Config) Comp() float64 {
+	if c.Compensation > 0 {
+		return c.Compensation
+	}
+	if c.Budget >= c.Streams() {
+		return 0
+	}
+	return c.CompFraction * c.CompMax()
+}
+
+// Validate reports the first bad field of c (after Defaults) by name.
+func (c Config) Validate() error {
+	m := c.Streams()
+	switch {
+	case c.Width <= 0 || c.Height <= 0:
+		return fmt.Errorf("monitor: grid %dx%d is empty (width and height must be >= 1)", c.Width, c.Height)
+	case c.Budget < 1:
+		return fmt.Errorf("monitor: budget %d must be at least 1", c.Budget)
+	case c.Budget > m:
+		return fmt.Errorf("monitor: budget %d exceeds the %d streams", c.Budget, m)
+	case c.TopR < 1:
+		return fmt.Errorf("monitor: top-r %d must be at least 1", c.TopR)
+	case c.TopR > m:
+		return fmt.Errorf("monitor: top-r %d exceeds the %d streams", c.TopR, m)
+	case !(c.Shift > 0) || math.IsInf(c.Shift, 0):
+		return fmt.Errorf("monitor: shift %v must be a finite number > 0", c.Shift)
+	case c.Compensation < 0 || math.IsNaN(c.Compensation) || c.CompFraction < 0 || math.IsNaN(c.CompFraction):
+		return fmt.Errorf("monitor: compensation must be >= 0")
+	case c.Budget < m && c.Comp() >= c.CompMax():
+		return fmt.Errorf("monitor: compensation %.4g is at or above its ceiling c_max = %.4g (q d^2 / 2(m-q)); every statistic would climb", c.Comp(), c.CompMax())
+	case c.Limit < 0 || math.IsNaN(c.Limit) || math.IsInf(c.Limit, 0):
+		return fmt.Errorf("monitor: limit %v must be a finite number >= 0", c.Limit)
+	case c.Hysteresis < 0 || c.Hysteresis > 1:
+		return fmt.Errorf("monitor: hysteresis %v must be in [0,1]", c.Hysteresis)
+	case c.SpatialWeight <= 0 || c.SpatialWeight >= 1:
+		return fmt.Errorf("monitor: spatial weight %v must be in (0,1)", c.SpatialWeight)
+	case c.ThompsonEps <= 0:
+		return fmt.Errorf("monitor: thompson eps %v must be > 0", c.ThompsonEps)
+	}
+	if _, err := ParsePolicy(string(c.Policy)); err != nil {
+		return err
+	}
+	if c.Policy == Oracle {
+		if len(c.Oracle) == 0 {
+			return fmt.Errorf("monitor: oracle policy needs the changed streams (Oracle field)")
+		}
+		for _, i := range c.Oracle {
+			if i < 0 || int(i) >= m {
+				return fmt.Errorf("monitor: oracle stream %d outside the %d streams", i, m)
+			}
+		}
+	}
+	return nil
+}
