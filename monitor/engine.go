@@ -1,0 +1,286 @@
+package monitor
+
+import (
+	"fmt"
+	"math"
+	"math/bits"
+	"math/rand/v2"
+)
+
+// Engine is the budgeted-read change detector for one grid of streams.
+// It is not safe for concurrent use: one goroutine owns an engine.
+//
+// Per stream it keeps the two-sided CUSUM of Page (1954, Biometrika 41),
+//
+//	U = max(0, U + d*z - d*d/2),  D = max(0, D - d*z - d*d/2),  L = max(U, D),
+//
+// with U and D of unread streams raised by the compensation c each frame
+// (Liu, Mei & Shi 2015, Technometrics 57(3)), and the global statistic
+// G = sum of the r largest L (Mei 2010, Biometrika 97). The compensation is
+// applied lazily: (U, D) are stored as of the stream's last update t_i and
+// the current value is U_i + c*(t - t_i).
+type Engine struct {
+	cfg        Config
+	m, q, r    int
+	c, d, half float64
+
+	u, dn    []float32 // U and D at the last update
+	last     []int32   // frame (steps-1) of the last update
+	zeroU    []int32   // last frame at which U was zero after an update
+	zeroD    []int32   // same for D
+	rank     *rankIndex
+	t        int32 // frames stepped so far
+	frameOff int
+
+	read, next []int32  // streams read at this frame / to read at the next
+	pick       []uint64 // bitmap used to emit picks in ascending order
+	scrID      []int32
+	scrKey     []float64
+	rng        *rand.Rand
+
+	// spatial policy
+	mark []uint8
+
+	// episodes and regions
+	state    State
+	episode  Alarm
+	regions  []Region
+	regWork  regionWork
+	limit    float64
+	started  Alarm
+	ended    Alarm
+	sweepLen int
+}
+
+// New validates cfg (after Defaults) and allocates every per-stream slice.
+func New(cfg Config) (*Engine, error) {
+	cfg = cfg.Defaults()
+	if err := cfg.Validate(); err != nil {
+		return nil, err
+	}
+	m := cfg.Streams()
+	e := &Engine{
+		cfg: cfg, m: m, q: cfg.Budget, r: cfg.TopR,
+		c: cfg.Comp(), d: cfg.Shift, half: cfg.Shift * cfg.Shift / 2,
+		u: make([]float32, m), dn: make([]float32, m),
+		last: make([]int32, m), zeroU: make([]int32, m), zeroD: make([]int32, m),
+		frameOff: cfg.FirstFrame,
+		read:     make([]int32, 0, m), next: make([]int32, 0, m),
+		pick:   make([]uint64, (m+63)/64),
+		scrID:  make([]int32, m),
+		scrKey: make([]float64, m),
+		rng:    rand.New(rand.NewPCG(cfg.Seed, cfg.Seed^0x9e3779b97f4a7c15)),
+		limit:  cfg.Limit,
+	}
+	if cfg.Policy == Full {
+		e.c = 0
+	}
+	e.sweepLen = (m + e.q - 1) / e.q
+	if cfg.Policy == Spatial {
+		e.mark = make([]uint8, m)
+	}
+	e.regWork.init(m)
+	e.regions = make([]Region, 0, maxRegions)
+	e.rank = newRankIndex(m, e.c)
+	e.Reset()
+	return e, nil
+}
+
+// Config returns the engine's configuration with defaults filled in.
+func (e *Engine) Config() Config { return e.cfg }
+
+// Compensation returns the absolute compensation c in use.
+func (e *Engine) Compensation() float64 { return e.c }
+
+// Frames returns the number of frames stepped so far.
+func (e *Engine) Frames() int { return int(e.t) }
+
+// SetLimit changes the control limit h (e.g. after calibration).
+func (e *Engine) SetLimit(h float64) { e.limit = h }
+
+// Limit returns the control limit h.
+func (e *Engine) Limit() float64 { return e.limit }
+
+// Reset sets every statistic to zero, ends any episode and restarts the
+// frame count at Config.FirstFrame.
+func (e *Engine) Reset() {
+	e.t = 0
+	e.resetStats()
+	e.state = Watching
+	e.regions = e.regions[:0]
+}
+
+func (e *Engine) resetStats() {
+	clear(e.u)
+	clear(e.dn)
+	for i := range e.last {
+		e.last[i] = e.t - 1
+		e.zeroU[i] = e.t - 1
+		e.zeroD[i] = e.t - 1
+	}
+	e.rank.reset(-e.c * float64(e.t-1))
+	e.planNext()
+}
+
+// Next returns the streams to read at the coming frame, in ascending order.
+// The slice is the engine's and stays valid until the next Step.
+func (e *Engine) Next() []int32 { return e.next }
+
+// onset returns the CUSUM change-point estimate of stream i: the frame
+// after the last one at which its larger side was zero.
+func (e *Engine) onset(i int32) int {
+	z := e.zeroU[i]
+	if e.dn[i] > e.u[i] {
+		z = e.zeroD[i]
+	}
+	return e.frameOff + int(z) + 1
+}
+
+// currentL returns stream i's local statistic as of the end of frame t.
+func (e *Engine) currentL(i int32, t int32) float64 {
+	return e.rank.key[i] + e.c*float64(t)
+}
+
+// Step consumes the values of the streams returned by Next: z[k] is the
+// standardised value of stream Next()[k]; missing[k] (nil for none) marks a
+// value that could not be read, which is treated as not read. It returns
+// the frame's update.
+func (e *Engine) Step(z []float32, missing []bool) (Update, error) {
+	if len(z) != len(e.next) {
+		return Update{}, fmt.Errorf("monitor: step got %d values for %d requested streams", len(z), len(e.next))
+	}
+	if missing != nil && len(missing) != len(z) {
+		return Update{}, fmt.Errorf("monitor: step got %d missing flags for %d values", len(missing), len(z))
+	}
+	for k, v := range z {
+		if missing != nil && missing[k] {
+			continue
+		}
+		if math.IsNaN(float64(v)) || math.IsInf(float64(v), 0) {
+			return Update{}, fmt.Errorf("monitor: value %d (stream %d) is %v; mark it missing instead", k, e.next[k], v)
+		}
+	}
+	e.read, e.next = e.next, e.read
+	t := e.t
+	c, d, half := float32(e.c), float32(e.d), float32(e.half)
+	e.rank.slide(-e.c * float64(t))
+	for k, i := range e.read {
+		if missing != nil && missing[k] {
+			continue
+		}
+		gap := float32(t - e.last[i] - 1) // unread frames since the last update
+		u := e.u[i] + c*gap + d*z[k] - half
+		dn := e.dn[i] + c*gap - d*z[k] - half
+		if u <= 0 {
+			u = 0
+			e.zeroU[i] = t
+		}
+		if dn <= 0 {
+			dn = 0
+			e.zeroD[i] = t
+		}
+		e.u[i], e.dn[i], e.last[i] = u, dn, t
+		l := u
+		if dn > l {
+			l = dn
+		}
+		e.rank.set(i, float64(l)-e.c*float64(t))
+	}
+	g := e.topRSum(t)
+	upd := Update{Frame: e.frameOff + int(t), G: g, Limit: e.limit, Read: e.read}
+	e.t++
+	e.episodeStep(&upd, t)
+	e.planNext()
+	return upd, nil
+}
+
+// topRSum returns G at the end of frame t.
+func (e *Engine) topRSum(t int32) float64 {
+	n := e.rank.topK(e.r, e.scrID, e.scrKey, math.Inf(-1))
+	var s float64
+	ct := e.c * float64(t)
+	for _, k := range e.scrKey[:n] {
+		s += k + ct
+	}
+	return s
+}
+
+// Local writes every stream's current local statistic L into dst (grown if
+// short) and returns it. O(m); meant for heat views, not the frame loop.
+func (e *Engine) Local(dst []float32) []float32 {
+	if cap(dst) < e.m {
+		dst = make([]float32, e.m)
+	}
+	dst = dst[:e.m]
+	t := e.t - 1
+	for i := range dst {
+		dst[i] = float32(e.currentL(int32(i), t))
+	}
+	return dst
+}
+
+// planNext fills e.next with the streams to read at frame e.t.
+func (e *Engine) planNext() {
+	e.next = e.next[:0]
+	switch e.cfg.Policy {
+	case Full:
+		for i := 0; i < e.m; i++ {
+			e.next = append(e.next, int32(i))
+		}
+		return
+	case Stride:
+		k := e.sweepLen
+		for i := int(e.t) % k; i < e.m; i += k {
+			e.next = append(e.next, int32(i))
+		}
+		return
+	case Oracle:
+		n := min(e.q, len(e.cfg.Oracle))
+		for _, i := range e.cfg.Oracle[:n] {
+			e.markPick(i)
+		}
+	case Random:
+		// Floyd's algorithm: q distinct streams, uniformly (Bentley & Floyd
+		// 1987, CACM 30(9), "Programming pearls: a sample of brilliance").
+		for j := e.m - e.q; j < e.m; j++ {
+			s := int32(e.rng.IntN(j + 1))
+			if e.picked(s) {
+				s = int32(j)
+			}
+			e.markPick(s)
+		}
+	case Adaptive:
+		n := e.rank.topK(e.q, e.scrID, e.scrKey, math.Inf(-1))
+		for _, i := range e.scrID[:n] {
+			e.markPick(i)
+		}
+	case Thompson:
+		e.planThompson()
+	case Spatial:
+		e.planSpatial()
+	}
+	e.emitPicks()
+}
+
+func (e *Engine) markPick(i int32)    { e.pick[i>>6] |= 1 << (uint(i) & 63) }
+func (e *Engine) picked(i int32) bool { return e.pick[i>>6]&(1<<(uint(i)&63)) != 0 }
+func (e *Engine) unmarkPick(i int32)  { e.pick[i>>6] &^= 1 << (uint(i) & 63) }
+func (e *Engine) pickCount() (n int) {
+	for _, w := range e.pick {
+		n += bits.OnesCount64(w)
+	}
+	return n
+}
+
+// emitPicks moves the bitmap's set bits into e.next in ascending order and
+// clears the bitmap. O(m/64 + q).
+func (e *Engine) emitPicks() {
+	for wi, w := range e.pick {
+		for w != 0 {
+			b := bits.TrailingZeros64(w)
+			e.next = append(e.next, int32(wi*64+b))
+			w &= w - 1
+		}
+		e.pick[wi] = 0
+	}
+}

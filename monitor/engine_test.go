@@ -1,0 +1,325 @@
+package monitor
+
+import (
+	"math"
+	"math/rand/v2"
+	"slices"
+	"strings"
+	"testing"
+)
+
+// mustEngine builds an engine or fails the test.
+func mustEngine(tb testing.TB, cfg Config) *Engine {
+	tb.Helper()
+	e, err := New(cfg)
+	if err != nil {
+		tb.Fatal(err)
+	}
+	return e
+}
+
+// stepNormal feeds N(0,1) values (plus shift on changed streams).
+func stepNormal(tb testing.TB, e *Engine, rng *rand.Rand, z []float32, changed map[int32]bool, delta float32) Update {
+	tb.Helper()
+	idx := e.Next()
+	z = z[:len(idx)]
+	for k, i := range idx {
+		z[k] = float32(rng.NormFloat64())
+		if changed[i] {
+			z[k] += delta
+		}
+	}
+	u, err := e.Step(z, nil)
+	if err != nil {
+		tb.Fatal(err)
+	}
+	return u
+}
+
+// TestLazyStateMatchesDirect checks the lazy compensation and the bucket
+// order against a direct O(m) implementation of the same published rules
+// (Page 1954 CUSUM, compensation per Liu, Mei & Shi 2015, top-r sum per
+// Mei 2010), for every policy.
+func TestLazyStateMatchesDirect(t *testing.T) {
+	for _, p := range Policies {
+		t.Run(string(p), func(t *testing.T) {
+			cfg := Config{Width: 17, Height: 13, Budget: 20, TopR: 5, Policy: p, Seed: 3, CompFraction: 0.5}
+			e := mustEngine(t, cfg)
+			m := cfg.Streams()
+			c := e.Compensation()
+			u := make([]float64, m)
+			d := make([]float64, m)
+			rng := rand.New(rand.NewPCG(1, 2))
+			z := make([]float32, m)
+			for f := 0; f < 600; f++ {
+				idx := slices.Clone(e.Next())
+				read := make([]bool, m)
+				for k, i := range idx {
+					z[k] = float32(rng.NormFloat64())
+					if f > 300 && i%17 < 3 {
+						z[k] += 1.5
+					}
+					read[i] = true
+				}
+				upd, err := e.Step(z[:len(idx)], nil)
+				if err != nil {
+					t.Fatal(err)
+				}
+				for k, i := range idx {
+					u[i] = math.Max(0, u[i]+float64(z[k])-0.5)
+					d[i] = math.Max(0, d[i]-float64(z[k])-0.5)
+				}
+				ls := make([]float64, m)
+				for i := 0; i < m; i++ {
+					if !read[i] {
+						u[i] += c
+						d[i] += c
+					}
+					ls[i] = math.Max(u[i], d[i])
+				}
+				slices.Sort(ls)
+				var g float64
+				for _, v := range ls[m-5:] {
+					g += v
+				}
+				if math.Abs(g-upd.G) > 1e-3*math.Max(1, g) {
+					t.Fatalf("frame %d: G = %v, direct %v", f, upd.G, g)
+				}
+				if p == Adaptive {
+					// The next picks must be the q largest L (up to ties).
+					loc := e.Local(nil)
+					var minPicked float64 = math.Inf(1)
+					picked := make([]bool, m)
+					for _, i := range e.Next() {
+						picked[i] = true
+						minPicked = math.Min(minPicked, float64(loc[i]))
+					}
+					for i := 0; i < m; i++ {
+						if !picked[i] && float64(loc[i]) > minPicked+1e-4 {
+							t.Fatalf("frame %d: stream %d (L=%v) not picked, but a picked one has L=%v", f, i, loc[i], minPicked)
+						}
+					}
+				}
+			}
+		})
+	}
+}
+
+// TestPolicyConformance runs every policy in control: the budget holds at
+// every frame, picks are distinct and ascending, and no stream is starved.
+// The starvation bound: a stream unread for T frames has L >= c*T; in
+// control the statistics of read streams stay below about lmax = 12 (a
+// common-practice bound: far above any two-sided CUSUM with d=1 reaches in
+// a few thousand frames), so after T = lmax/c + 2*ceil(m/q) frames it must
+// be among the q largest. Random is checked against the coupon-collector
+// bound ceil(m/q) * (ln m + 10) instead.
+func TestPolicyConformance(t *testing.T) {
+	for _, p := range append(slices.Clone(Policies), Oracle) {
+		t.Run(string(p), func(t *testing.T) {
+			cfg := Config{Width: 32, Height: 32, Budget: 31, TopR: 10, Policy: p, Seed: 7}
+			if p == Oracle {
+				cfg.Oracle = []int32{5, 6, 7}
+			}
+			e := mustEngine(t, cfg)
+			m, q := cfg.Streams(), cfg.Budget
+			sweep := (m + q - 1) / q
+			bound := int(12/e.Compensation()) + 2*sweep
+			if p == Random {
+				bound = int(float64(sweep) * (math.Log(float64(m)) + 10))
+			}
+			if p == Full || p == Stride {
+				bound = sweep
+			}
+			lastRead := make([]int, m)
+			for i := range lastRead {
+				lastRead[i] = -1
+			}
+			rng := rand.New(rand.NewPCG(9, 9))
+			z := make([]float32, m)
+			frames := 3 * bound
+			for f := 0; f < frames; f++ {
+				idx := e.Next()
+				if len(idx) > q && p != Full {
+					t.Fatalf("frame %d: %d reads exceed budget %d", f, len(idx), q)
+				}
+				for k := 1; k < len(idx); k++ {
+					if idx[k] <= idx[k-1] {
+						t.Fatalf("frame %d: picks not strictly ascending at %d", f, k)
+					}
+				}
+				for _, i := range idx {
+					lastRead[i] = f
+				}
+				stepNormal(t, e, rng, z, nil, 0)
+				if p == Oracle || f < bound {
+					continue
+				}
+				for i, lr := range lastRead {
+					if f-lr > bound {
+						t.Fatalf("frame %d: stream %d unread since frame %d (bound %d frames)", f, i, lr, bound)
+					}
+				}
+			}
+		})
+	}
+}
+
+// TestStepAllocatesNothing checks the per-frame path allocates nothing after
+// construction, for every policy.
+func TestStepAllocatesNothing(t *testing.T) {
+	for _, p := range Policies {
+		cfg := Config{Width: 64, Height: 64, Budget: 120, TopR: 10, Policy: p, Seed: 1, Limit: 1e9}
+		e := mustEngine(t, cfg)
+		rng := rand.New(rand.NewPCG(1, 1))
+		z := make([]float32, cfg.Streams())
+		for range 200 {
+			stepNormal(t, e, rng, z, nil, 0)
+		}
+		allocs := testing.AllocsPerRun(200, func() {
+			idx := e.Next()
+			for k := range idx {
+				z[k] = float32(rng.NormFloat64())
+			}
+			if _, err := e.Step(z[:len(idx)], nil); err != nil {
+				t.Fatal(err)
+			}
+		})
+		if allocs != 0 {
+			t.Errorf("%s: %.2f allocations per frame, want 0", p, allocs)
+		}
+	}
+}
+
+// TestBadConfig checks each bad field gets an error naming it, no panic.
+func TestBadConfig(t *testing.T) {
+	ok := Config{Width: 10, Height: 10, Budget: 5, TopR: 3}
+	cases := []struct {
+		name string
+		mod  func(*Config)
+		want string
+	}{
+		{"ErrBudgetOverStreams", func(c *Config) { c.Budget = 101 }, "budget"},
+		{"ErrBudgetZero", func(c *Config) { c.Budget = 0 }, "budget"},
+		{"ErrTopROverStreams", func(c *Config) { c.TopR = 101 }, "top-r"},
+		{"ErrTopRZero", func(c *Config) { c.TopR = -1 }, "top-r"},
+		{"ErrShiftNegative", func(c *Config) { c.Shift = -1 }, "shift"},
+		{"ErrShiftNaN", func(c *Config) { c.Shift = math.NaN() }, "shift"},
+		{"ErrEmptyGrid", func(c *Config) { c.Width = 0 }, "grid"},
+		{"ErrCompensationAboveCeiling", func(c *Config) { c.CompFraction = 1.2 }, "compensation"},
+		{"ErrPolicy", func(c *Config) { c.Policy = "sometimes" }, "policy"},
+		{"ErrOracleWithoutStreams", func(c *Config) { c.Policy = Oracle }, "oracle"},
+		{"ErrLimit", func(c *Config) { c.Limit = math.Inf(1) }, "limit"},
+	}
+	for _, tc := range cases {
+		t.Run(tc.name, func(t *testing.T) {
+			c := ok
+			tc.mod(&c)
+			_, err := New(c)
+			if err == nil || !strings.Contains(err.Error(), tc.want) {
+				t.Fatalf("New(%+v) = %v, want an error naming %q", c, err, tc.want)
+			}
+		})
+	}
+	t.Run("ErrNonFiniteValue", func(t *testing.T) {
+		e := mustEngine(t, ok)
+		z := make([]float32, len(e.Next()))
+		z[2] = float32(math.NaN())
+		if _, err := e.Step(z, nil); err == nil || !strings.Contains(err.Error(), "NaN") {
+			t.Fatalf("Step with NaN = %v, want error", err)
+		}
+		z[2] = float32(math.Inf(1))
+		if _, err := e.Step(z, nil); err == nil || !strings.Contains(err.Error(), "Inf") {
+			t.Fatalf("Step with Inf = %v, want error", err)
+		}
+		missing := make([]bool, len(z))
+		missing[2] = true
+		if _, err := e.Step(z, missing); err != nil {
+			t.Fatalf("Step with the Inf marked missing: %v", err)
+		}
+		if _, err := e.Step(z[:1], nil); err == nil {
+			t.Fatal("Step with too few values: no error")
+		}
+	})
+}
+
+// TestAlarmRegion plants a disk of shifted streams and checks the alarm's
+// region box contains the disk centre, and the episode ends after the
+// change stops (hysteresis).
+func TestAlarmRegion(t *testing.T) {
+	for _, p := range []Policy{Adaptive, Full, Spatial} {
+		t.Run(string(p), func(t *testing.T) {
+			cfg := Config{Width: 40, Height: 30, Budget: 120, TopR: 10, Policy: p, Seed: 5, Limit: 90}
+			e := mustEngine(t, cfg)
+			cx, cy := 27, 9
+			changed := map[int32]bool{}
+			for y := 0; y < 30; y++ {
+				for x := 0; x < 40; x++ {
+					if (x-cx)*(x-cx)+(y-cy)*(y-cy) <= 9 {
+						changed[int32(y*40+x)] = true
+					}
+				}
+			}
+			rng := rand.New(rand.NewPCG(4, 4))
+			z := make([]float32, cfg.Streams())
+			var started, ended *Alarm
+			for f := 0; f < 1200 && ended == nil; f++ {
+				ch := map[int32]bool(nil)
+				if f >= 300 && f < 400 {
+					ch = changed
+				}
+				u := stepNormal(t, e, rng, z, ch, 1.5)
+				if u.Started != nil && f >= 300 && started == nil {
+					a := *u.Started
+					started = &a
+				}
+				if u.Ended != nil && started != nil {
+					a := *u.Ended
+					ended = &a
+				}
+			}
+			if started == nil {
+				t.Fatal("no alarm after the change")
+			}
+			if len(started.Regions) == 0 {
+				t.Fatal("alarm without a region")
+			}
+			r := started.Regions[0]
+			if cx < r.X0 || cx > r.X1 || cy < r.Y0 || cy > r.Y1 {
+				t.Fatalf("first region %+v does not contain the centre (%d,%d)", r, cx, cy)
+			}
+			// A sampled stream's last zero is seen only when it is read, so the
+			// onset estimate can be early by a few sweeps of m/q frames.
+			sweep := (cfg.Streams() + cfg.Budget - 1) / cfg.Budget
+			if r.Onset < 300-6*sweep || r.Onset > started.Frame {
+				t.Errorf("onset %d, want within 6 sweeps before the change at 300 and <= alarm frame %d", r.Onset, started.Frame)
+			}
+			if ended == nil || ended.EndFrame < 400 {
+				t.Fatalf("episode did not end after the change stopped: %+v", ended)
+			}
+		})
+	}
+}
+
+func TestSelectTop(t *testing.T) {
+	rng := rand.New(rand.NewPCG(2, 3))
+	for trial := 0; trial < 200; trial++ {
+		n := 1 + rng.IntN(300)
+		k := rng.IntN(n + 1)
+		keys := make([]float64, n)
+		ids := make([]int32, n)
+		for i := range keys {
+			keys[i] = float64(rng.IntN(20)) // many ties
+			ids[i] = int32(i)
+		}
+		want := slices.Clone(keys)
+		slices.Sort(want)
+		slices.Reverse(want)
+		selectTop(keys, ids, k)
+		got := slices.Clone(keys[:k])
+		slices.Sort(got)
+		slices.Reverse(got)
+		if !slices.Equal(got, want[:k]) {
+			t.Fatalf("n=%d k=%d: top %v, want %v", n, k, got, want[:k])
+		}
+	}
+}
