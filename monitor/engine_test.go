@@ -284,8 +284,8 @@ func TestAlarmRegion(t *testing.T) {
 				t.Fatal("alarm without a region")
 			}
 			r := started.Regions[0]
-			if cx < r.X0 || cx > r.X1 || cy < r.Y0 || cy > r.Y1 {
-				t.Fatalf("first region %+v does not contain the centre (%d,%d)", r, cx, cy)
+			if d2 := (r.CX-float64(cx))*(r.CX-float64(cx)) + (r.CY-float64(cy))*(r.CY-float64(cy)); d2 > 9 {
+				t.Fatalf("first region %+v: centroid outside the changed disk around (%d,%d)", r, cx, cy)
 			}
 			// A sampled stream's last zero is seen only when it is read, so the
 			// onset estimate can be early by a few sweeps of m/q frames.
@@ -295,6 +295,12 @@ func TestAlarmRegion(t *testing.T) {
 			}
 			if ended == nil || ended.EndFrame < 400 {
 				t.Fatalf("episode did not end after the change stopped: %+v", ended)
+			}
+			if len(ended.Regions) == 0 {
+				t.Fatal("ended episode has no regions at its peak")
+			}
+			if r := ended.Regions[0]; cx < r.X0 || cx > r.X1 || cy < r.Y0 || cy > r.Y1 {
+				t.Fatalf("region at the episode's peak %+v does not contain the centre (%d,%d)", r, cx, cy)
 			}
 		})
 	}

@@ -39,6 +39,7 @@ func (e *Engine) episodeStep(upd *Update, t int32) {
 			e.episode = Alarm{Frame: frame, EndFrame: -1, Peak: upd.G}
 			e.started = e.episode
 			e.started.Regions = append([]Region(nil), e.regions...)
+			e.peakRegions = append(e.peakRegions[:0], e.regions...)
 			upd.Started = &e.started
 			if e.cfg.Restart {
 				e.endEpisode(upd, frame)
@@ -49,9 +50,6 @@ func (e *Engine) episodeStep(upd *Update, t int32) {
 			}
 		}
 	case Alarming:
-		if upd.G > e.episode.Peak {
-			e.episode.Peak = upd.G
-		}
 		if upd.G < e.cfg.Hysteresis*h {
 			e.endEpisode(upd, frame)
 			upd.State = Watching
@@ -59,6 +57,10 @@ func (e *Engine) episodeStep(upd *Update, t int32) {
 			return
 		}
 		e.findRegions(t)
+		if upd.G > e.episode.Peak {
+			e.episode.Peak = upd.G
+			e.peakRegions = append(e.peakRegions[:0], e.regions...)
+		}
 	}
 	upd.State = e.state
 	if e.state == Alarming {
@@ -69,10 +71,7 @@ func (e *Engine) episodeStep(upd *Update, t int32) {
 func (e *Engine) endEpisode(upd *Update, frame int) {
 	e.ended = e.episode
 	e.ended.EndFrame = frame
-	e.ended.Regions = nil
-	if e.started.Frame == e.episode.Frame {
-		e.ended.Regions = e.started.Regions
-	}
+	e.ended.Regions = append([]Region(nil), e.peakRegions...)
 	upd.Ended = &e.ended
 	e.state = Watching
 }

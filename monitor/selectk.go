@@ -2,8 +2,10 @@ package monitor
 
 // selectTop reorders keys/ids in place so that the k largest keys occupy
 // keys[:k] (in no particular order). It is Hoare's quickselect (Hoare 1961,
-// CACM 4(7), "Algorithm 65: FIND") with a median-of-three pivot; expected
-// O(n), no allocation.
+// CACM 4(7), "Algorithm 65: FIND") with a median-of-three pivot and a
+// three-way partition (Dijkstra's Dutch national flag), so the long runs of
+// equal keys we see — streams zeroed in the same frame share one key — cost
+// O(n), not O(n^2). Expected O(n), no allocation.
 func selectTop(keys []float64, ids []int32, k int) {
 	if len(keys) != len(ids) {
 		panic("monitor: selectTop length mismatch")
@@ -13,40 +15,31 @@ func selectTop(keys []float64, ids []int32, k int) {
 		return
 	}
 	for lo < hi {
-		// Median of three as pivot, moved to hi.
 		mid := lo + (hi-lo)/2
-		if keys[mid] < keys[lo] {
-			swap2(keys, ids, mid, lo)
-		}
-		if keys[hi] < keys[lo] {
-			swap2(keys, ids, hi, lo)
-		}
-		if keys[mid] < keys[hi] {
-			swap2(keys, ids, mid, hi)
-		}
-		pivot := keys[hi]
-		// Partition descending: elements > pivot go left.
-		i := lo
-		for j := lo; j < hi; j++ {
-			if keys[j] > pivot {
-				swap2(keys, ids, i, j)
+		a, b, c := keys[lo], keys[mid], keys[hi]
+		pivot := max(min(a, b), min(max(a, b), c)) // median of three
+		// Partition descending: [lo,gt) > pivot, [gt,i) == pivot, (lt,hi] < pivot.
+		gt, i, lt := lo, lo, hi
+		for i <= lt {
+			switch v := keys[i]; {
+			case v > pivot:
+				swap2(keys, ids, gt, i)
+				gt++
+				i++
+			case v < pivot:
+				swap2(keys, ids, i, lt)
+				lt--
+			default:
 				i++
 			}
 		}
-		swap2(keys, ids, i, hi)
-		// Fast exit on long runs of equal keys (ties are common: streams
-		// zeroed in the same frame share one key).
-		e := i + 1
-		for e <= hi && keys[e] == pivot {
-			e++
-		}
 		switch {
+		case k < gt:
+			hi = gt - 1
 		case k <= i:
-			hi = i - 1
-		case k <= e:
-			return
+			return // keys[:k] = everything > pivot plus some == pivot
 		default:
-			lo = e
+			lo = i
 		}
 	}
 }

@@ -32,7 +32,8 @@ type Alarm struct {
 	Frame    int      // first frame with G >= h
 	EndFrame int      // last frame of the episode; -1 while it is still on
 	Peak     float64  // largest G during the episode
-	Regions  []Region // regions at the alarm frame (the caller owns this copy)
+	Regions  []Region // at the start: regions at the alarm frame; at the end: regions
+	// at the frame of the largest G, usually the fuller picture (the caller owns this copy)
 }
 
 // Update is what one Step reports. Slices are engine-owned and valid until
