@@ -292,10 +292,10 @@ func (e *Engine) emitPicks() {
 	}
 }
 
-// statePass reads and writes every stream's state once (U, D, last update
+// StatePass reads and writes every stream's state once (U, D, last update
 // and rank key), as any method touching all m streams per frame must. It
 // changes nothing and exists as the memory-bandwidth floor for benchmarks.
-func (e *Engine) statePass() {
+func (e *Engine) StatePass() {
 	var acc float32
 	for i := range e.u {
 		u, d := e.u[i], e.dn[i]

@@ -39,6 +39,6 @@ func BenchmarkStep(b *testing.B) {
 func BenchmarkStatePass(b *testing.B) {
 	e := mustEngine(b, Config{Width: 1024, Height: 1024, Budget: 100, TopR: 10})
 	for i := 0; i < b.N; i++ {
-		e.statePass()
+		e.StatePass()
 	}
 }
