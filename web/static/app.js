@@ -1,0 +1,1244 @@
+// sparsewatch page: start sessions, watch one live over a websocket, change
+// its settings (owner only). Vanilla JS and canvas; the protocol is in
+// DEVELOPERS.md ("Websocket protocol"). Tests poll document.body.dataset.
+"use strict";
+(() => {
+  const $ = (id) => document.getElementById(id);
+  const body = document.body;
+
+  const POLICIES = [
+    ["adaptive", "adaptive (read where the statistic is high)"],
+    ["thompson", "randomised by statistic (Thompson)"],
+    ["spatial", "adaptive with neighbours"],
+    ["random", "random pixels"],
+    ["stride", "in turn, a slice per frame"],
+    ["full", "every pixel (no budget)"],
+  ];
+  // Status states (server) -> words shown to people.
+  const STATE_WORDS = {
+    queued: "waiting to start", learning: "learning reference", calibrating: "setting the limit",
+    watching: "watching", alarm: "alarm", finished: "finished", failed: "failed",
+    stopped: "stopped", connecting: "connecting", offline: "connection lost",
+  };
+  const WIRE_STATES = ["learning", "watching", "alarm", "finished"];
+  const COLORS = {
+    mask: [25, 195, 255], region: "#ff4d2e", picked: "#ffd23f", g: "#1d3557",
+    limit: "#c63a22", episode: "rgba(255, 77, 46, 0.22)", learn: "rgba(138, 127, 90, 0.20)",
+  };
+  const STORE_KEY = "sparsewatch.sessions";
+
+  // ---------- small helpers ----------
+
+  function fmt(v, d = 2) {
+    if (v === null || v === undefined || Number.isNaN(v)) return "–";
+    if (!Number.isFinite(v)) return v > 0 ? "∞" : "−∞";
+    const a = Math.abs(v);
+    if (a !== 0 && (a >= 1e5 || a < 1e-3)) return v.toExponential(2);
+    return v.toFixed(d);
+  }
+  function intText(n) { return Math.round(n).toLocaleString("en-US"); }
+  function showError(msg) {
+    const el = $("page-error");
+    el.textContent = msg; el.hidden = !msg;
+    if (msg) body.dataset.error = msg; else delete body.dataset.error;
+  }
+  function setProgress(el, frac, label) {
+    el.hidden = false;
+    el.querySelector(".bar").style.width = Math.round(Math.max(0, Math.min(1, frac)) * 100) + "%";
+    el.querySelector(".label").textContent = label;
+  }
+  function loadStore() {
+    try { return JSON.parse(localStorage.getItem(STORE_KEY) || "{}") || {}; } catch { return {}; }
+  }
+  function remember(id, info) {
+    const s = loadStore();
+    s[id] = Object.assign(s[id] || {}, info);
+    try { localStorage.setItem(STORE_KEY, JSON.stringify(s)); } catch { /* private mode: links still work */ }
+  }
+  function absURL(u) { return u ? new URL(u, location.origin).href : ""; }
+  function errorText(status, data, fallback) {
+    if (data && typeof data === "object") {
+      const m = data.error || data.message || data.msg;
+      if (m) return typeof m === "string" ? m : JSON.stringify(m);
+    }
+    return fallback || ("request failed (" + status + ")");
+  }
+  // api sends a JSON request and returns the parsed answer; errors carry the
+  // server's message and status.
+  async function api(method, path, payload, token) {
+    const opt = { method, headers: {} };
+    if (token) opt.headers.Authorization = "Bearer " + token;
+    if (payload !== undefined) {
+      opt.headers["Content-Type"] = "application/json";
+      opt.body = JSON.stringify(payload);
+    }
+    const res = await fetch(path, opt);
+    const text = await res.text();
+    let data = null;
+    try { data = text ? JSON.parse(text) : null; } catch { data = text; }
+    if (!res.ok) {
+      const e = new Error(errorText(res.status, data, text));
+      e.status = res.status;
+      throw e;
+    }
+    return data;
+  }
+  function fillPolicies(sel) {
+    sel.innerHTML = "";
+    for (const [v, label] of POLICIES) {
+      const o = document.createElement("option");
+      o.value = v; o.textContent = label; sel.appendChild(o);
+    }
+  }
+
+  // ---------- session state ----------
+
+  const S = {
+    id: "", token: "", role: "", name: "",
+    W: 0, H: 0, gw: 0, gh: 0, tile: 1,
+    params: {}, status: {}, limit: 0,
+    fr: [], g: [], lim: [], st: [],          // history, ascending frames
+    alarms: new Map(),                       // alarm.frame -> alarm
+    cur: null,                               // latest frame update
+    preview: null, previewFrame: -1,
+    heat: null, heatFrame: -1,
+    picked: -1,                              // frame picked on chart or list
+    shareURL: "",
+    ws: null, wsTries: 0, closing: false,
+  };
+
+  function setState(st) {
+    body.dataset.state = st;
+    const b = $("state-badge");
+    b.hidden = false;
+    b.textContent = STATE_WORDS[st] || st;
+    $("f-state").textContent = STATE_WORDS[st] || st;
+  }
+
+  function resetHistory() {
+    S.fr = []; S.g = []; S.lim = []; S.st = [];
+    S.alarms.clear(); S.cur = null; S.picked = -1;
+    S.preview = null; S.previewFrame = -1; S.heat = null;
+    body.dataset.frame = "-1";
+    renderAlarms();
+  }
+
+  // ---------- routing ----------
+
+  async function start() {
+    fillPolicies(document.querySelector("#new-settings select[name=policy]"));
+    fillPolicies(document.querySelector("#settings select[name=policy]"));
+    const path = location.pathname;
+    let m;
+    try {
+      if ((m = path.match(/^\/watch\/([^/]+)\/?$/))) {
+        const id = decodeURIComponent(m[1]);
+        const frag = new URLSearchParams(location.hash.slice(1));
+        let tok = frag.get("token") || "";
+        if (tok) remember(id, { owner_token: tok, owner_url: path + "#token=" + tok });
+        else tok = (loadStore()[id] || {}).owner_token || "";
+        if (!tok) throw new Error("This owner link has no token. Open the link you got when the session started.");
+        openSession(id, tok, "owner");
+      } else if ((m = path.match(/^\/share\/([^/]+)\/?$/))) {
+        const share = decodeURIComponent(m[1]);
+        const info = await api("GET", "/api/share/" + encodeURIComponent(share));
+        openSession(info.id, share, info.role || "viewer");
+      } else {
+        openHome();
+      }
+    } catch (e) {
+      setState("failed");
+      showError(e.message);
+    }
+  }
+
+  // ---------- home: upload, demo, list ----------
+
+  let picked = [];   // files chosen for upload
+
+  function openHome() {
+    $("home").hidden = false;
+    body.dataset.role = "";
+    body.dataset.state = "home";
+    wireUpload();
+    wireDemo();
+    listSessions();
+  }
+
+  function describePicked() {
+    const n = picked.length;
+    const bytes = picked.reduce((a, f) => a + f.size, 0);
+    $("picked").textContent = n === 0 ? "Nothing chosen yet." :
+      n + (n === 1 ? " file, " : " files, ") + (bytes / 1e6).toFixed(bytes < 1e6 ? 2 : 1) + " MB" +
+      (n === 1 ? " (" + picked[0].name + ")" : "");
+    $("send").disabled = n === 0;
+    body.dataset.picked = String(n);
+  }
+  function keep(files) {
+    picked = Array.from(files).filter((f) => !f.name.startsWith("."));
+    describePicked();
+  }
+  // Walks a dropped folder (DataTransferItem entries) into a flat file list.
+  async function walkEntry(entry, out) {
+    if (entry.isFile) {
+      out.push(await new Promise((ok, bad) => entry.file(ok, bad)));
+      return;
+    }
+    if (!entry.isDirectory) return;
+    const reader = entry.createReader();
+    for (;;) {
+      const batch = await new Promise((ok, bad) => reader.readEntries(ok, bad));
+      if (batch.length === 0) break;
+      for (const e of batch) await walkEntry(e, out);
+    }
+  }
+
+  function wireUpload() {
+    $("files").addEventListener("change", (e) => keep(e.target.files));
+    $("folder").addEventListener("change", (e) => keep(e.target.files));
+    const drop = $("drop");
+    drop.addEventListener("dragover", (e) => { e.preventDefault(); drop.classList.add("over"); });
+    drop.addEventListener("dragleave", () => drop.classList.remove("over"));
+    drop.addEventListener("drop", async (e) => {
+      e.preventDefault();
+      drop.classList.remove("over");
+      const items = Array.from(e.dataTransfer.items || []);
+      const entries = items.map((it) => it.webkitGetAsEntry && it.webkitGetAsEntry()).filter(Boolean);
+      if (entries.length === 0) { keep(e.dataTransfer.files); return; }
+      const out = [];
+      try { for (const en of entries) await walkEntry(en, out); } catch (err) { showError("Could not read the dropped folder: " + err.message); }
+      keep(out);
+    });
+    $("send").addEventListener("click", upload);
+  }
+
+  function newParams() {
+    const f = $("new-settings");
+    const p = {};
+    const budget = f.querySelector("[name=budget]").value.trim();
+    if (budget) p.budget = budget;
+    p.policy = f.querySelector("[name=policy]").value;
+    const rf = parseInt(f.querySelector("[name=reference_frames]").value, 10);
+    if (rf > 0) p.reference_frames = rf;
+    const a = parseFloat(f.querySelector("[name=arl0]").value);
+    if (a > 0) p.arl0 = a;
+    return p;
+  }
+
+  function upload() {
+    if (picked.length === 0) return;
+    const fd = new FormData();
+    // Natural order is the server's job; we keep the folder's names.
+    for (const f of picked) fd.append("files", f, f.name);
+    fd.append("params", JSON.stringify(newParams()));
+    const xhr = new XMLHttpRequest();
+    const prog = $("upload-progress");
+    const total = picked.reduce((a, f) => a + f.size, 0);
+    setProgress(prog, 0, "uploading…");
+    $("send").disabled = true;
+    body.dataset.state = "uploading";
+    xhr.upload.onprogress = (e) => {
+      const t = e.lengthComputable ? e.total : total;
+      setProgress(prog, t ? e.loaded / t : 0, "uploading " + (e.loaded / 1e6).toFixed(1) + " of " + (t / 1e6).toFixed(1) + " MB");
+    };
+    xhr.onerror = () => { body.dataset.state = "home"; $("send").disabled = false; showError("The upload failed: the server could not be reached."); };
+    xhr.onload = () => {
+      let data = null;
+      try { data = JSON.parse(xhr.responseText); } catch { /* keep null */ }
+      if (xhr.status !== 201 && xhr.status !== 200) {
+        body.dataset.state = "home";
+        $("send").disabled = false;
+        setProgress(prog, 0, "not accepted");
+        showError("The upload was not accepted: " + errorText(xhr.status, data, xhr.responseText));
+        return;
+      }
+      setProgress(prog, 1, "uploaded, opening the session…");
+      goToSession(data, picked.length === 1 ? picked[0].name : picked.length + " files");
+    };
+    xhr.open("POST", "/api/sessions");
+    xhr.send(fd);
+  }
+
+  function goToSession(data, name) {
+    remember(data.id, { owner_token: data.owner_token, owner_url: data.owner_url, share_url: data.share_url, name });
+    location.href = data.owner_url || ("/watch/" + encodeURIComponent(data.id) + "#token=" + encodeURIComponent(data.owner_token));
+  }
+
+  async function wireDemo() {
+    const sel = $("demo-scenario");
+    try {
+      const list = await api("GET", "/api/demos");
+      const items = Array.isArray(list) ? list : (list && (list.demos || list.scenarios)) || [];
+      for (const d of items) {
+        const o = document.createElement("option");
+        o.value = typeof d === "string" ? d : d.name;
+        o.textContent = typeof d === "string" ? d : (d.title || d.name) + (d.about ? " – " + d.about : "");
+        sel.appendChild(o);
+      }
+    } catch { /* no list: the server picks its default scene */ }
+    sel.hidden = sel.options.length === 0;
+    $("demo").addEventListener("click", async () => {
+      $("demo").disabled = true;
+      try {
+        const source = { kind: "demo" };
+        if (sel.value) source.scenario = sel.value;
+        const data = await api("POST", "/api/sessions", { source, params: {} });
+        goToSession(data, "demo " + (sel.value || ""));
+      } catch (e) {
+        $("demo").disabled = false;
+        showError("Could not start a demo: " + e.message);
+      }
+    });
+  }
+
+  async function listSessions() {
+    const tb = $("sessions").querySelector("tbody");
+    let list;
+    try { list = await api("GET", "/api/sessions"); } catch (e) {
+      tb.innerHTML = "<tr><td colspan=4 class=muted>Could not list sessions: " + e.message + "</td></tr>";
+      return;
+    }
+    const items = Array.isArray(list) ? list : (list && list.sessions) || [];
+    const mine = loadStore();
+    tb.innerHTML = "";
+    if (items.length === 0) tb.innerHTML = "<tr><td colspan=4 class=muted>None yet.</td></tr>";
+    for (const s of items) {
+      const tr = document.createElement("tr");
+      const own = mine[s.id];
+      const cells = [s.name || s.id, STATE_WORDS[s.state] || s.state || "", s.frames_total ? (s.frames_seen || 0) + " / " + s.frames_total : String(s.frames_seen ?? s.frames ?? "")];
+      for (const c of cells) { const td = document.createElement("td"); td.textContent = c; tr.appendChild(td); }
+      const td = document.createElement("td");
+      if (own && own.owner_token) {
+        const a = document.createElement("a");
+        a.href = own.owner_url || ("/watch/" + encodeURIComponent(s.id) + "#token=" + encodeURIComponent(own.owner_token));
+        a.textContent = "open";
+        td.appendChild(a);
+      } else {
+        td.className = "muted"; td.textContent = "link not on this browser";
+      }
+      tr.appendChild(td);
+      tb.appendChild(tr);
+    }
+  }
+
+  // ---------- watch one session ----------
+
+  function openSession(id, token, role) {
+    S.id = id; S.token = token; S.role = role;
+    body.dataset.role = role;
+    body.dataset.session = id;
+    body.classList.toggle("viewer", role !== "owner");
+    $("watch").hidden = false;
+    $("role-note").textContent = role === "owner" ?
+      "You opened the owner link: you can change the settings." :
+      "Watch-only link: you see everything live, but cannot change anything.";
+    $("settings-fields").disabled = role !== "owner";
+    for (const b of ["compare", "share", "calibrate", "apply"]) $(b).disabled = role !== "owner";
+    const q = "?token=" + encodeURIComponent(token);
+    const base = "/api/sessions/" + encodeURIComponent(id);
+    $("dl-csv").href = base + "/alarms.csv" + q;
+    $("dl-jsonl").href = base + "/alarms.jsonl" + q;
+    $("dl-report").href = base + "/report" + q;
+    $("dl-stats").href = base + "/stats.csv" + q;
+    $("dl-report").download = "sparsewatch-" + id + "-report.json";
+    $("dl-stats").download = "sparsewatch-" + id + "-stats.csv";
+    $("dl-csv").download = "sparsewatch-" + id + "-alarms.csv";
+    $("dl-jsonl").download = "sparsewatch-" + id + "-alarms.jsonl";
+    setState("connecting");
+    wireView();
+    wireChart();
+    wireSettings();
+    wireCompare();
+    wireShare();
+    $("snapshot").addEventListener("click", snapshot);
+    window.addEventListener("resize", () => { view.fitted && fitView(); dirty(); });
+    connect();
+  }
+
+  function connect() {
+    const proto = location.protocol === "https:" ? "wss://" : "ws://";
+    const url = proto + location.host + "/ws/sessions/" + encodeURIComponent(S.id) + "?token=" + encodeURIComponent(S.token);
+    const ws = new WebSocket(url);
+    ws.binaryType = "arraybuffer";
+    S.ws = ws;
+    ws.onopen = () => {
+      S.wsTries = 0;
+      if ($("show-heat").checked) ws.send(JSON.stringify({ type: "heat", on: true }));
+    };
+    ws.onmessage = (ev) => {
+      try {
+        if (typeof ev.data === "string") onText(JSON.parse(ev.data));
+        else onBinary(ev.data);
+      } catch (e) {
+        body.dataset.protocolError = e.message;
+        console.error("sparsewatch: bad message", e);
+      }
+    };
+    ws.onclose = () => {
+      if (S.ws !== ws || S.closing) return;
+      const done = ["finished", "failed", "stopped"].includes(body.dataset.state);
+      if (!done) setState("offline");
+      S.wsTries++;
+      if (S.wsTries <= 20) setTimeout(connect, Math.min(5000, 300 * S.wsTries));
+    };
+  }
+
+  function send(msg) {
+    if (S.ws && S.ws.readyState === WebSocket.OPEN) S.ws.send(JSON.stringify(msg));
+  }
+
+  // ---------- messages ----------
+
+  function onText(m) {
+    switch (m.type) {
+      case "hello": onHello(m); break;
+      case "alarm": addAlarm(m.alarm); renderAlarms(); dirtyChart(); break;
+      case "status": onStatus(m.session || {}); break;
+      case "calibration": onCalibration(m); break;
+      case "error": showError(m.message || m.error || "server error"); break;
+      default: break;
+    }
+  }
+
+  function onHello(m) {
+    resetHistory();
+    S.role = m.role || S.role;
+    S.W = m.width | 0; S.H = m.height | 0;
+    S.gw = m.grid_w | 0; S.gh = m.grid_h | 0; S.tile = m.tile || 1;
+    S.params = m.params || {};
+    if (m.share_url) S.shareURL = absURL(m.share_url);
+    const h = m.history || {};
+    const fr = h.frame || [], g = h.g || [];
+    S.limit = h.limit || 0;
+    for (let i = 0; i < fr.length; i++) {
+      S.fr.push(fr[i]); S.g.push(g[i]);
+      S.lim.push(h.limits ? h.limits[i] : S.limit);
+      S.st.push(h.state ? h.state[i] : -1);
+    }
+    for (const a of h.alarms || []) addAlarm(a);
+    $("f-size").textContent = S.W + " × " + S.H + " pixels" + (S.tile > 1 ? ", tiles of " + S.tile + " × " + S.tile : "") +
+      " (" + intText(S.gw * S.gh) + " streams)";
+    onStatus(m.session || {});
+    fillSettings(S.params);
+    if (S.fr.length) body.dataset.frame = String(S.fr[S.fr.length - 1]);
+    body.dataset.hello = String((+body.dataset.hello || 0) + 1);
+    fitView();
+    renderAlarms();
+    dirty(); dirtyChart();
+  }
+
+  function onStatus(s) {
+    S.status = Object.assign(S.status, s);
+    if (s.name) { S.name = s.name; $("session-name").textContent = s.name; document.title = s.name + " – sparsewatch"; }
+    if (s.params) { S.params = s.params; }
+    if (s.state) setState(s.state);
+    if (typeof s.limit === "number" && s.limit > 0) S.limit = s.limit;
+    if (Array.isArray(s.alarms)) { for (const a of s.alarms) addAlarm(a); renderAlarms(); }
+    const errs = s.errors || [];
+    const fe = $("file-errors");
+    fe.hidden = errs.length === 0;
+    fe.textContent = "";
+    if (errs.length) {
+      const p = document.createElement("p");
+      p.textContent = errs.length + (errs.length === 1 ? " problem" : " problems") + " (the other frames go on):";
+      fe.appendChild(p);
+      const ul = document.createElement("ul");
+      for (const e of errs.slice(0, 20)) {
+        const li = document.createElement("li");
+        li.textContent = (e.file ? e.file + ": " : "") + (e.message || e.error || JSON.stringify(e));
+        ul.appendChild(li);
+      }
+      fe.appendChild(ul);
+    }
+    body.dataset.fileErrors = String(errs.length);
+    if (s.state === "calibrating" && typeof s.progress === "number") onCalibration({ progress: s.progress });
+    updateFacts();
+  }
+
+  function onCalibration(m) {
+    const prog = $("cal-progress");
+    const p = typeof m.progress === "number" ? m.progress : 0;
+    setProgress(prog, p, p >= 1 ? "done" : "setting the limit… " + Math.round(p * 100) + "%");
+    body.dataset.calibration = String(p);
+    if (m.limit) {
+      S.limit = m.limit;
+      let t = "Limit " + fmt(m.limit, 3);
+      if (m.arl0) t += ": about " + intText(m.arl0) + (m.arl0_se ? " ± " + intText(m.arl0_se) : "") + " frames between false alarms";
+      if (m.note) t += ". " + m.note;
+      $("cal-result").textContent = t;
+      dirtyChart();
+    }
+  }
+
+  function onBinary(buf) {
+    const dv = new DataView(buf);
+    if (dv.byteLength < 1) return;
+    switch (dv.getUint8(0)) {
+      case 1: onFrame(decodeFrame(dv)); break;
+      case 2: onPreview(dv, buf); break;
+      case 3: onHeat(dv); break;
+      default: break;
+    }
+  }
+
+  // decodeFrame reads a kind-1 frame update (DEVELOPERS.md); it throws on a
+  // short or inconsistent message rather than drawing garbage.
+  function decodeFrame(dv) {
+    if (dv.byteLength < 27) throw new Error("frame update too short");
+    const u = {
+      state: dv.getUint8(1), scale: dv.getUint16(2, true), frame: dv.getUint32(4, true),
+      g: dv.getFloat32(8, true), limit: dv.getFloat32(12, true),
+      mw: dv.getUint16(16, true), mh: dv.getUint16(18, true), enc: dv.getUint8(20),
+    };
+    const mlen = dv.getUint32(21, true);
+    let o = 25;
+    if (o + mlen + 2 > dv.byteLength) throw new Error("frame update mask overruns the message");
+    u.mask = new Uint8Array(dv.buffer, dv.byteOffset + o, mlen);
+    o += mlen;
+    const n = dv.getUint16(o, true); o += 2;
+    if (o + n * 12 > dv.byteLength) throw new Error("frame update regions overrun the message");
+    u.regions = [];
+    for (let i = 0; i < n; i++, o += 12) {
+      u.regions.push({
+        x0: dv.getUint16(o, true), y0: dv.getUint16(o + 2, true),
+        x1: dv.getUint16(o + 4, true), y1: dv.getUint16(o + 6, true),
+        peak: dv.getFloat32(o + 8, true),
+      });
+    }
+    return u;
+  }
+
+  function onFrame(u) {
+    S.cur = u;
+    // History: append new frames, overwrite a frame sent again (after a seek).
+    const last = S.fr.length ? S.fr[S.fr.length - 1] : -1;
+    if (u.frame > last) {
+      S.fr.push(u.frame); S.g.push(u.g); S.lim.push(u.limit); S.st.push(u.state);
+    } else {
+      const i = findFrame(u.frame);
+      if (i >= 0 && S.fr[i] === u.frame) { S.g[i] = u.g; S.lim[i] = u.limit; S.st[i] = u.state; }
+    }
+    if (u.limit > 0) S.limit = u.limit;
+    maskLayer(u);
+    const st = WIRE_STATES[u.state];
+    const shown = body.dataset.state;
+    if (st && !(st === "learning" && shown === "calibrating")) setState(st);
+    body.dataset.frame = String(u.frame);
+    body.dataset.regions = JSON.stringify(u.regions.map((r) => [r.x0, r.y0, r.x1, r.y1]));
+    body.dataset.g = String(u.g);
+    body.dataset.limit = String(u.limit);
+    body.dataset.frames = String((+body.dataset.frames || 0) + 1);
+    updateFacts();
+    dirty(); dirtyChart();
+  }
+
+  function onPreview(dv, buf) {
+    if (dv.byteLength < 8) return;
+    const format = dv.getUint8(1), frame = dv.getUint32(4, true);
+    const blob = new Blob([new Uint8Array(buf, 8)], { type: format === 1 ? "image/jpeg" : "image/png" });
+    createImageBitmap(blob).then((bmp) => {
+      if (frame < S.previewFrame && S.previewFrame - frame < 1000) { bmp.close(); return; }
+      if (S.preview) S.preview.close();
+      S.preview = bmp; S.previewFrame = frame;
+      body.dataset.preview = String(frame);
+      dirty();
+    }, (e) => { body.dataset.previewError = String(e); });
+  }
+
+  function onHeat(dv) {
+    if (dv.byteLength < 12) return;
+    const frame = dv.getUint32(4, true), w = dv.getUint16(8, true), h = dv.getUint16(10, true);
+    if (12 + w * h > dv.byteLength || w === 0 || h === 0) return;
+    const cells = new Uint8Array(dv.buffer, dv.byteOffset + 12, w * h);
+    const c = layerCanvas("heat", w, h);
+    const img = c.ctx.createImageData(w, h);
+    const px = new Uint32Array(img.data.buffer);
+    for (let i = 0; i < cells.length; i++) px[i] = HEAT_LUT[cells[i]];
+    c.ctx.putImageData(img, 0, 0);
+    // A heat cell covers f grid cells of tile pixels each (server max-pools).
+    const f = Math.max(1, Math.ceil(S.gw / w));
+    S.heat = { canvas: c.canvas, w, h, cellPx: f * S.tile, cells: cells.slice() };
+    S.heatFrame = frame;
+    body.dataset.heat = String(frame);
+    dirty();
+  }
+
+  function findFrame(f) {
+    let lo = 0, hi = S.fr.length - 1;
+    while (lo < hi) {
+      const mid = (lo + hi) >> 1;
+      if (S.fr[mid] < f) lo = mid + 1; else hi = mid;
+    }
+    return S.fr.length ? lo : -1;
+  }
+
+  function addAlarm(a) {
+    if (!a || typeof a.frame !== "number") return;
+    S.alarms.set(a.frame, Object.assign(S.alarms.get(a.frame) || {}, a));
+    body.dataset.alarms = String(S.alarms.size);
+  }
+
+  function updateFacts() {
+    const f = S.cur ? S.cur.frame : (S.fr.length ? S.fr[S.fr.length - 1] : -1);
+    const total = S.status.frames_total;
+    const ft = f < 0 ? "–" : "frame " + intText(f) + (total ? " of " + intText(total) : "");
+    $("f-frame").textContent = ft;
+    const fc = $("frame-count");
+    fc.hidden = f < 0; fc.textContent = ft;
+    const g = S.cur ? S.cur.g : S.status.g, lim = S.cur ? S.cur.limit : S.limit;
+    $("f-g").textContent = fmt(g) + " / " + (lim > 0 ? fmt(lim) : "not set yet");
+    const p = S.params || {};
+    const streams = S.gw * S.gh;
+    let bt = p.budget !== undefined ? String(p.budget) : "–";
+    if (S.cur && S.cur.readCount !== undefined && streams) {
+      bt += " (" + (S.cur.scale > 1 ? "about " : "") + intText(S.cur.readCount) + " of " + intText(streams) + (S.cur.scale > 1 ? " streams, shown in blocks of " + S.cur.scale + " × " + S.cur.scale : " streams") + ")";
+    }
+    if (p.policy) bt += ", " + p.policy;
+    $("f-budget").textContent = bt;
+  }
+
+  // ---------- frame view ----------
+
+  const view = { zoom: 1, px: 0, py: 0, fitted: true, dpr: 1, hover: null };
+  const layers = {};
+  let needDraw = false, needChart = false;
+
+  function layerCanvas(name, w, h) {
+    let l = layers[name];
+    if (!l || l.canvas.width !== w || l.canvas.height !== h) {
+      const canvas = document.createElement("canvas");
+      canvas.width = w; canvas.height = h;
+      l = layers[name] = { canvas, ctx: canvas.getContext("2d") };
+    }
+    return l;
+  }
+
+  // Heat colours: transparent at 0, then dark violet -> rose -> yellow at the limit.
+  const HEAT_LUT = (() => {
+    const lut = new Uint32Array(256);
+    const stops = [[0, 40, 30, 90], [0.55, 200, 60, 90], [1, 255, 230, 80]];
+    for (let i = 0; i < 256; i++) {
+      const t = i / 255;
+      let k = 0;
+      while (k < stops.length - 2 && t > stops[k + 1][0]) k++;
+      const [t0, r0, g0, b0] = stops[k], [t1, r1, g1, b1] = stops[k + 1];
+      const u = (t - t0) / (t1 - t0);
+      const r = r0 + (r1 - r0) * u, g = g0 + (g1 - g0) * u, b = b0 + (b1 - b0) * u;
+      const a = i === 0 ? 0 : Math.min(235, 70 + t * 200);
+      lut[i] = ((a & 255) << 24) | ((b & 255) << 16) | ((g & 255) << 8) | (r & 255); // RGBA little-endian
+    }
+    return lut;
+  })();
+
+  // maskLayer paints the read cells of u into a mw x mh layer.
+  function maskLayer(u) {
+    const { mw, mh } = u;
+    if (!mw || !mh) return;
+    const l = layerCanvas("mask", mw, mh);
+    if (!l.img || l.img.width !== mw || l.img.height !== mh) {
+      l.img = l.ctx.createImageData(mw, mh);
+      l.px = new Uint32Array(l.img.data.buffer);
+    }
+    const px = l.px;
+    px.fill(0);
+    const [r, g, b] = COLORS.mask;
+    const on = (255 << 24) | (b << 16) | (g << 8) | r;
+    const n = mw * mh, m = u.mask;
+    let count = 0;
+    if (u.enc === 0) {
+      for (let c = 0; c < n; c++) {
+        if ((m[c >> 3] >> (c & 7)) & 1) { px[c] = on; count++; }
+      }
+    } else {
+      let c = 0, i = 0, first = true;
+      while (i < m.length) {
+        let v = 0, shift = 0, byte;
+        do {
+          byte = m[i++];
+          v += (byte & 0x7f) * 2 ** shift;
+          shift += 7;
+        } while (byte & 0x80 && i < m.length);
+        c = first ? v : c + v;
+        first = false;
+        if (c >= n) break;
+        px[c] = on; count++;
+      }
+    }
+    l.ctx.putImageData(l.img, 0, 0);
+    u.readCount = count * (u.scale > 1 ? u.scale * u.scale : 1); // upper bound at coarse scales
+    u.cells = count;
+    body.dataset.maskCells = String(count);
+    body.dataset.maskScale = String(u.scale);
+  }
+
+  function canvasSize() {
+    const c = $("view");
+    const dpr = window.devicePixelRatio || 1;
+    const w = Math.max(1, Math.round(c.clientWidth * dpr)), h = Math.max(1, Math.round(c.clientHeight * dpr));
+    if (c.width !== w || c.height !== h) { c.width = w; c.height = h; }
+    view.dpr = dpr;
+    return [w, h];
+  }
+  function fitView() {
+    if (!S.W || !S.H) return;
+    const [w, h] = canvasSize();
+    view.zoom = Math.min(w / S.W, h / S.H) * 0.98;
+    view.px = (S.W - w / view.zoom) / 2;
+    view.py = (S.H - h / view.zoom) / 2;
+    view.fitted = true;
+    dirty();
+  }
+  function zoomAt(factor, cx, cy) {
+    const [w, h] = canvasSize();
+    if (cx === undefined) { cx = w / 2; cy = h / 2; }
+    const sx = view.px + cx / view.zoom, sy = view.py + cy / view.zoom;
+    const fitZoom = S.W ? Math.min(w / S.W, h / S.H) * 0.5 : 0.1;
+    view.zoom = Math.max(fitZoom, Math.min(64 * view.dpr, view.zoom * factor));
+    view.px = sx - cx / view.zoom;
+    view.py = sy - cy / view.zoom;
+    view.fitted = false;
+    dirty();
+  }
+  // toCanvas maps source pixel coordinates to canvas pixels (tests use it).
+  function toCanvas(x, y) { return [(x - view.px) * view.zoom, (y - view.py) * view.zoom]; }
+
+  function dirty() { if (!needDraw) { needDraw = true; requestAnimationFrame(frameTick); } }
+  function dirtyChart() { if (!needChart) { needChart = true; requestAnimationFrame(frameTick); } }
+  function frameTick() {
+    if (needDraw) { needDraw = false; drawView(); }
+    if (needChart) { needChart = false; drawChart(); }
+  }
+
+  function drawView() {
+    const c = $("view");
+    const [w, h] = canvasSize();
+    const ctx = c.getContext("2d");
+    drawScene(ctx, w, h, view.zoom, view.px, view.py, view.dpr);
+    body.dataset.drawn = String(S.cur ? S.cur.frame : -1);
+  }
+
+  // drawScene draws preview, read mask, heat and regions with the given
+  // transform (canvas px = (source px - p) * zoom); the PNG snapshot reuses it.
+  function drawScene(ctx, w, h, zoom, px, py, lw) {
+    ctx.setTransform(1, 0, 0, 1, 0, 0);
+    ctx.fillStyle = "#1b1d20";
+    ctx.fillRect(0, 0, w, h);
+    if (!S.W || !S.H) return;
+    ctx.imageSmoothingEnabled = false;
+    ctx.setTransform(zoom, 0, 0, zoom, -px * zoom, -py * zoom);
+    ctx.fillStyle = "#3a3d42";
+    ctx.fillRect(0, 0, S.W, S.H);
+    if (S.preview) ctx.drawImage(S.preview, 0, 0, S.W, S.H);
+    if ($("show-heat").checked && S.heat) {
+      const e = S.heat.cellPx;
+      ctx.globalAlpha = 0.85;
+      ctx.drawImage(S.heat.canvas, 0, 0, S.heat.w * e, S.heat.h * e);
+      ctx.globalAlpha = 1;
+    }
+    if ($("show-mask").checked && layers.mask && S.cur) {
+      const e = S.cur.scale * S.tile;
+      ctx.globalAlpha = S.preview ? 0.55 : 0.8;
+      ctx.drawImage(layers.mask.canvas, 0, 0, S.cur.mw * e, S.cur.mh * e);
+      ctx.globalAlpha = 1;
+    }
+    ctx.setTransform(1, 0, 0, 1, 0, 0);
+    // Frame border, so a small frame is easy to find.
+    ctx.strokeStyle = "#6d7178";
+    ctx.lineWidth = 1;
+    ctx.strokeRect(Math.round(-px * zoom) - 0.5, Math.round(-py * zoom) - 0.5, Math.round(S.W * zoom) + 1, Math.round(S.H * zoom) + 1);
+    if ($("show-regions").checked) {
+      const pa = S.picked >= 0 ? alarmAt(S.picked) : null;
+      if (pa && (!S.cur || S.cur.regions.length === 0 || pa.frame !== alarmAt(S.cur.frame)?.frame)) {
+        for (const r of pa.regions || []) {
+          const b = r.bbox || [0, 0, 0, 0];
+          drawBox(ctx, { x0: b[0], y0: b[1], x1: b[2], y1: b[3], peak: r.peak }, zoom, px, py, lw, COLORS.picked, true);
+        }
+      }
+      if (S.cur) for (const r of S.cur.regions) drawBox(ctx, r, zoom, px, py, lw, COLORS.region, false);
+    }
+  }
+
+  function drawBox(ctx, r, zoom, px, py, lw, color, dashed) {
+    let x0 = (r.x0 - px) * zoom, y0 = (r.y0 - py) * zoom;
+    let x1 = (r.x1 + 1 - px) * zoom, y1 = (r.y1 + 1 - py) * zoom;
+    const min = 8 * lw; // keep a one-pixel region visible when zoomed out
+    if (x1 - x0 < min) { const m = (x0 + x1) / 2; x0 = m - min / 2; x1 = m + min / 2; }
+    if (y1 - y0 < min) { const m = (y0 + y1) / 2; y0 = m - min / 2; y1 = m + min / 2; }
+    const pad = lw; // outline sits just outside the box
+    ctx.save();
+    ctx.lineWidth = 2 * lw;
+    ctx.strokeStyle = color;
+    ctx.setLineDash(dashed ? [5 * lw, 4 * lw] : []);
+    ctx.strokeRect(x0 - pad, y0 - pad, x1 - x0 + 2 * pad, y1 - y0 + 2 * pad);
+    if (r.peak !== undefined) {
+      ctx.font = (11 * lw) + "px DejaVu Sans, sans-serif";
+      ctx.fillStyle = color;
+      ctx.fillText("peak " + fmt(r.peak, 1), x0, Math.max(11 * lw, y0 - 4 * lw));
+    }
+    ctx.restore();
+  }
+
+  function wireView() {
+    const c = $("view");
+    $("zoom-in").onclick = () => zoomAt(2);
+    $("zoom-out").onclick = () => zoomAt(0.5);
+    $("zoom-fit").onclick = () => fitView();
+    $("zoom-px").onclick = () => {
+      const target = 16 * view.dpr;
+      const hv = view.hover;
+      const [w, h] = canvasSize();
+      const [cx, cy] = hv ? toCanvas(hv[0] + 0.5, hv[1] + 0.5) : (S.cur && S.cur.regions[0] ?
+        toCanvas((S.cur.regions[0].x0 + S.cur.regions[0].x1 + 1) / 2, (S.cur.regions[0].y0 + S.cur.regions[0].y1 + 1) / 2) : [w / 2, h / 2]);
+      // Bring the point of interest to the centre at 16 screen px per source px.
+      const sx = view.px + cx / view.zoom, sy = view.py + cy / view.zoom;
+      view.zoom = target;
+      view.px = sx - w / 2 / view.zoom; view.py = sy - h / 2 / view.zoom;
+      view.fitted = false;
+      dirty();
+    };
+    for (const id of ["show-mask", "show-regions"]) $(id).onchange = dirty;
+    $("show-heat").onchange = (e) => { send({ type: "heat", on: e.target.checked }); dirty(); };
+    c.addEventListener("wheel", (e) => {
+      e.preventDefault();
+      const r = c.getBoundingClientRect();
+      zoomAt(e.deltaY < 0 ? 1.25 : 0.8, (e.clientX - r.left) * view.dpr, (e.clientY - r.top) * view.dpr);
+    }, { passive: false });
+    let drag = null;
+    c.addEventListener("pointerdown", (e) => { drag = [e.clientX, e.clientY, view.px, view.py]; c.setPointerCapture(e.pointerId); });
+    c.addEventListener("pointerup", () => { drag = null; });
+    c.addEventListener("pointermove", (e) => {
+      const r = c.getBoundingClientRect();
+      if (drag) {
+        view.px = drag[2] - (e.clientX - drag[0]) * view.dpr / view.zoom;
+        view.py = drag[3] - (e.clientY - drag[1]) * view.dpr / view.zoom;
+        view.fitted = false;
+        dirty();
+      }
+      const sx = Math.floor(view.px + (e.clientX - r.left) * view.dpr / view.zoom);
+      const sy = Math.floor(view.py + (e.clientY - r.top) * view.dpr / view.zoom);
+      view.hover = (sx >= 0 && sy >= 0 && sx < S.W && sy < S.H) ? [sx, sy] : null;
+      readout();
+    });
+    c.addEventListener("pointerleave", () => { view.hover = null; readout(); });
+  }
+
+  function readout() {
+    const el = $("readout");
+    if (!view.hover) { el.textContent = "Move over the frame to read a pixel. Scroll to zoom, drag to move."; return; }
+    const [x, y] = view.hover;
+    let t = "pixel x " + x + ", y " + y;
+    const k = S.tile;
+    if (k > 1) t += " · stream " + Math.floor(x / k) + ", " + Math.floor(y / k);
+    const u = S.cur;
+    if (u && u.mw) {
+      const e = u.scale * k;
+      const cx = Math.floor(x / e), cy = Math.floor(y / e);
+      const on = layers.mask && layers.mask.px && layers.mask.px[cy * u.mw + cx] !== 0;
+      t += on ? " · read this frame" : " · not read this frame";
+      if (u.scale > 1 && on) t += " (somewhere in its " + u.scale + " × " + u.scale + " block)";
+    }
+    if (S.heat && $("show-heat").checked) {
+      const e = S.heat.cellPx;
+      const v = S.heat.cells[Math.floor(y / e) * S.heat.w + Math.floor(x / e)];
+      if (v !== undefined) t += " · local statistic " + (v >= 255 ? "at or above" : Math.round(v / 2.55) + "% of") + " the limit";
+    }
+    t += " · zoom " + fmt(view.zoom / view.dpr, 2) + "×";
+    el.textContent = t;
+  }
+
+  // ---------- statistic chart ----------
+
+  const chart = { x0: 46, x1: 0, y0: 0, y1: 0, fmax: 1, ymax: 1, dpr: 1 };
+
+  function alarmEpisodes() {
+    const lastF = S.fr.length ? S.fr[S.fr.length - 1] : 0;
+    return [...S.alarms.values()].sort((a, b) => a.frame - b.frame)
+      .map((a) => [a.frame, (a.end_frame === undefined || a.end_frame === null || a.end_frame < 0) ? lastF : a.end_frame, a]);
+  }
+  function alarmAt(f) {
+    let best = null;
+    for (const [s, e, a] of alarmEpisodes()) if (f >= s && f <= e) best = a;
+    return best;
+  }
+  function chartX(f) { return chart.x0 + (f / chart.fmax) * (chart.x1 - chart.x0); }
+  function chartY(v) { return chart.y1 - (Math.min(v, chart.ymax) / chart.ymax) * (chart.y1 - chart.y0); }
+
+  function drawChart() {
+    const c = $("chart");
+    const dpr = window.devicePixelRatio || 1;
+    const W = Math.max(1, Math.round(c.clientWidth * dpr)), H = Math.max(1, Math.round(c.clientHeight * dpr));
+    if (c.width !== W || c.height !== H) { c.width = W; c.height = H; }
+    const ctx = c.getContext("2d");
+    ctx.setTransform(1, 0, 0, 1, 0, 0);
+    ctx.fillStyle = "#fff"; ctx.fillRect(0, 0, W, H);
+    chart.dpr = dpr;
+    chart.x0 = 50 * dpr; chart.x1 = W - 10 * dpr; chart.y0 = 10 * dpr; chart.y1 = H - 24 * dpr;
+    const n = S.fr.length;
+    const lastF = n ? S.fr[n - 1] : 0;
+    chart.fmax = Math.max(10, (S.status.frames_total || 0) - 1, lastF);
+    let gmax = 0;
+    for (let i = 0; i < n; i++) if (S.g[i] > gmax && Number.isFinite(S.g[i])) gmax = S.g[i];
+    const lim = S.limit || 0;
+    chart.ymax = lim > 0 ? Math.max(lim * 1.4, Math.min(gmax, lim * 4)) * 1.05 : Math.max(gmax * 1.1, 1);
+    ctx.font = (11 * dpr) + "px DejaVu Sans, sans-serif";
+    // Learning reference period.
+    const rf = (S.params && S.params.reference_frames) || 0;
+    if (rf > 0) {
+      ctx.fillStyle = COLORS.learn;
+      ctx.fillRect(chartX(0), chart.y0, chartX(Math.min(rf, chart.fmax)) - chartX(0), chart.y1 - chart.y0);
+    }
+    // Alarm episodes.
+    ctx.fillStyle = COLORS.episode;
+    for (const [s, e] of alarmEpisodes()) {
+      const xa = chartX(s), xb = Math.max(chartX(e + 1), xa + 3 * dpr);
+      ctx.fillRect(xa, chart.y0, xb - xa, chart.y1 - chart.y0);
+    }
+    // Axes and grid.
+    ctx.strokeStyle = "#d9d6cc"; ctx.lineWidth = 1; ctx.fillStyle = "#6a6f76";
+    ctx.textAlign = "right"; ctx.textBaseline = "middle";
+    for (let i = 0; i <= 4; i++) {
+      const v = chart.ymax * i / 4, y = Math.round(chartY(v)) + 0.5;
+      ctx.beginPath(); ctx.moveTo(chart.x0, y); ctx.lineTo(chart.x1, y); ctx.stroke();
+      ctx.fillText(fmt(v, v < 10 ? 1 : 0), chart.x0 - 4 * dpr, y);
+    }
+    ctx.textAlign = "center"; ctx.textBaseline = "top";
+    const step = niceStep(chart.fmax / 6);
+    for (let f = 0; f <= chart.fmax; f += step) ctx.fillText(String(f), chartX(f), chart.y1 + 5 * dpr);
+    // Control limit (per-frame values, drawn as steps).
+    if (n || lim > 0) {
+      ctx.strokeStyle = COLORS.limit; ctx.lineWidth = 1.5 * dpr; ctx.setLineDash([6 * dpr, 4 * dpr]);
+      ctx.beginPath();
+      if (n === 0) { ctx.moveTo(chart.x0, chartY(lim)); ctx.lineTo(chart.x1, chartY(lim)); }
+      let prev = null;
+      for (let i = 0; i < n; i++) {
+        const l = S.lim[i] > 0 ? S.lim[i] : 0;
+        if (l <= 0) { prev = null; continue; }
+        const x = chartX(S.fr[i]), y = chartY(l);
+        if (prev === null) ctx.moveTo(x, y); else { ctx.lineTo(x, prev); ctx.lineTo(x, y); }
+        prev = y;
+      }
+      if (prev !== null) ctx.lineTo(chart.x1, prev);
+      ctx.stroke(); ctx.setLineDash([]);
+    }
+    // Statistic: one min-max bar per canvas column when frames outnumber columns.
+    ctx.strokeStyle = COLORS.g; ctx.lineWidth = 1.5 * dpr;
+    ctx.beginPath();
+    let col = -1, lo = 0, hi = 0, started = false;
+    const flush = () => {
+      if (col < 0) return;
+      if (!started) { ctx.moveTo(col, chartY(lo)); started = true; } else ctx.lineTo(col, chartY(lo));
+      if (hi !== lo) ctx.lineTo(col, chartY(hi));
+    };
+    for (let i = 0; i < n; i++) {
+      const v = Number.isFinite(S.g[i]) ? S.g[i] : chart.ymax;
+      const x = Math.round(chartX(S.fr[i]));
+      if (x !== col) { flush(); col = x; lo = hi = v; } else { lo = Math.min(lo, v); hi = Math.max(hi, v); }
+    }
+    flush();
+    ctx.stroke();
+    // Picked frame.
+    if (S.picked >= 0) {
+      const x = Math.round(chartX(S.picked)) + 0.5;
+      ctx.strokeStyle = "#b8860b"; ctx.lineWidth = 2 * dpr;
+      ctx.beginPath(); ctx.moveTo(x, chart.y0); ctx.lineTo(x, chart.y1); ctx.stroke();
+    }
+    if (n === 0) {
+      ctx.fillStyle = "#6a6f76"; ctx.textAlign = "center"; ctx.textBaseline = "middle";
+      ctx.fillText("no frames yet", (chart.x0 + chart.x1) / 2, (chart.y0 + chart.y1) / 2);
+    }
+    body.dataset.chartFrames = String(n);
+    body.dataset.chartEpisodes = String(S.alarms.size);
+  }
+  function niceStep(x) {
+    const p = 10 ** Math.floor(Math.log10(Math.max(x, 1)));
+    for (const m of [1, 2, 5, 10]) if (m * p >= x) return m * p;
+    return 10 * p;
+  }
+
+  function frameFromChart(ev) {
+    const c = $("chart"), r = c.getBoundingClientRect();
+    const x = (ev.clientX - r.left) * chart.dpr;
+    const f = Math.round((x - chart.x0) / (chart.x1 - chart.x0) * chart.fmax);
+    return Math.max(0, Math.min(chart.fmax, f));
+  }
+  function wireChart() {
+    const c = $("chart");
+    c.addEventListener("click", (ev) => pickFrame(frameFromChart(ev)));
+    c.addEventListener("mousemove", (ev) => {
+      const f = frameFromChart(ev);
+      const i = findFrame(f);
+      let t = "frame " + f;
+      if (i >= 0 && S.fr[i] === f) t += ": statistic " + fmt(S.g[i]) + ", limit " + (S.lim[i] > 0 ? fmt(S.lim[i]) : "not set");
+      const a = alarmAt(f);
+      if (a) t += " · inside the alarm that started at frame " + a.frame;
+      $("chart-readout").textContent = t;
+    });
+    c.addEventListener("mouseleave", () => { $("chart-readout").textContent = ""; });
+  }
+
+  // pickFrame highlights frame f and its alarm; the owner also asks the
+  // server to show that frame.
+  function pickFrame(f) {
+    S.picked = f;
+    body.dataset.picked = String(f);
+    const a = alarmAt(f);
+    body.dataset.pickedAlarm = a ? String(a.frame) : "";
+    if (S.role === "owner") send({ type: "seek", frame: f });
+    renderAlarms();
+    dirty(); dirtyChart();
+  }
+
+  // ---------- alarm list ----------
+
+  function renderAlarms() {
+    const tb = $("alarms").querySelector("tbody");
+    tb.innerHTML = "";
+    const eps = alarmEpisodes();
+    $("no-alarms").hidden = eps.length > 0;
+    $("alarm-count").textContent = eps.length ? "(" + eps.length + ")" : "";
+    const pa = S.picked >= 0 ? alarmAt(S.picked) : null;
+    for (const [, , a] of eps) {
+      const tr = document.createElement("tr");
+      if (pa && pa.frame === a.frame) tr.className = "picked";
+      const regs = (a.regions || []).slice().sort((p, q) => (q.peak || 0) - (p.peak || 0));
+      const onsets = regs.map((r) => r.onset).filter((v) => typeof v === "number");
+      const began = onsets.length ? Math.min(...onsets) : null;
+      const b = regs[0] && regs[0].bbox;
+      const where = b ? b[0] + "," + b[1] + " – " + b[2] + "," + b[3] + (regs.length > 1 ? " (+" + (regs.length - 1) + " more)" : "") : "–";
+      const ended = (a.end_frame === undefined || a.end_frame === null || a.end_frame < 0) ? "going on" : String(a.end_frame);
+      for (const v of [String(a.frame), began === null ? "–" : String(began), ended, where, fmt(a.peak, 1)]) {
+        const td = document.createElement("td"); td.textContent = v; tr.appendChild(td);
+      }
+      tr.addEventListener("click", () => pickFrame(a.frame));
+      tb.appendChild(tr);
+    }
+  }
+
+  // ---------- settings (owner) ----------
+
+  function field(name) { return document.querySelector("#settings [name='" + name + "']"); }
+
+  function fillSettings(p) {
+    if (!p) return;
+    for (const k of ["budget", "policy", "top_r", "shift", "compensation", "tile", "reference_frames", "model", "arl0"]) {
+      const el = field(k);
+      if (el && p[k] !== undefined && document.activeElement !== el) el.value = p[k];
+    }
+    showTarget();
+  }
+
+  // targetFrames turns the false-alarm target into frames: directly, or
+  // hours * 3600 * frames per second.
+  function targetFrames() {
+    const mode = document.querySelector("#settings [name='arl0-mode']:checked").value;
+    if (mode === "hours") {
+      const h = parseFloat(field("hours").value), fps = parseFloat(field("fps").value);
+      return h > 0 && fps > 0 ? Math.round(h * 3600 * fps) : NaN;
+    }
+    return Math.round(parseFloat(field("arl0").value));
+  }
+  function showTarget() {
+    const n = targetFrames();
+    const el = $("arl0-frames");
+    el.textContent = Number.isFinite(n) && n > 0 ?
+      "= one false alarm per " + intText(n) + " frames on average (in-control run length)" : "Give a positive number.";
+    body.dataset.arl0 = Number.isFinite(n) ? String(n) : "";
+  }
+
+  function collectParams() {
+    const p = {};
+    const budget = field("budget").value.trim();
+    if (budget) p.budget = budget;
+    p.policy = field("policy").value;
+    p.model = field("model").value;
+    for (const k of ["top_r", "tile", "reference_frames"]) {
+      const v = parseInt(field(k).value, 10);
+      if (Number.isFinite(v)) p[k] = v;
+    }
+    for (const k of ["shift", "compensation"]) {
+      const v = parseFloat(field(k).value);
+      if (Number.isFinite(v)) p[k] = v;
+    }
+    const a = targetFrames();
+    if (Number.isFinite(a) && a > 0) p.arl0 = a;
+    return p;
+  }
+
+  function wireSettings() {
+    const form = $("settings");
+    form.addEventListener("input", showTarget);
+    form.addEventListener("change", showTarget);
+    form.addEventListener("submit", async (e) => {
+      e.preventDefault();
+      if (S.role !== "owner") return;
+      const msg = $("settings-msg");
+      msg.textContent = "Sending…";
+      try {
+        const st = await api("PATCH", "/api/sessions/" + encodeURIComponent(S.id) + "/params", collectParams(), S.token);
+        msg.textContent = "Applied; the review starts again from frame 0.";
+        resetHistory();
+        if (st && typeof st === "object") onStatus(st.session || st);
+        fillSettings(S.params);
+        dirty(); dirtyChart();
+      } catch (err) {
+        msg.textContent = "Not applied: " + err.message;
+      }
+    });
+    $("calibrate").addEventListener("click", async () => {
+      if (S.role !== "owner") return;
+      const a = targetFrames();
+      setProgress($("cal-progress"), 0, "starting…");
+      $("cal-result").textContent = "";
+      try {
+        const r = await api("POST", "/api/sessions/" + encodeURIComponent(S.id) + "/calibrate", Object.assign(collectParams(), { arl0: a }), S.token);
+        if (r && typeof r === "object" && (r.limit || r.progress !== undefined)) onCalibration(Object.assign({ progress: 1 }, r));
+      } catch (err) {
+        setProgress($("cal-progress"), 0, "failed");
+        $("cal-result").textContent = "Could not set the limit: " + err.message;
+      }
+    });
+    showTarget();
+  }
+
+  // ---------- compare (owner) ----------
+
+  function wireCompare() {
+    const box = $("compare-policies");
+    for (const [v] of POLICIES) {
+      const l = document.createElement("label");
+      l.innerHTML = "<input type=checkbox value='" + v + "'> " + v + " ";
+      box.appendChild(l);
+    }
+    for (const cb of box.querySelectorAll("input")) cb.checked = ["random", "stride"].includes(cb.value);
+    $("compare").addEventListener("click", async () => {
+      if (S.role !== "owner") return;
+      const pols = [...box.querySelectorAll("input:checked")].map((x) => x.value);
+      const out = $("compare-out");
+      out.innerHTML = "";
+      if (pols.length === 0) { out.textContent = "Tick at least one way of picking pixels."; return; }
+      const prog = $("compare-progress");
+      setProgress(prog, 0.1, "running " + pols.length + " more " + (pols.length === 1 ? "review" : "reviews") + "…");
+      $("compare").disabled = true;
+      try {
+        const r = await api("POST", "/api/sessions/" + encodeURIComponent(S.id) + "/compare", { policies: pols }, S.token);
+        setProgress(prog, 1, "done");
+        showCompare(r);
+      } catch (err) {
+        setProgress(prog, 0, "failed");
+        out.textContent = err.status === 404 || err.status === 405 ?
+          "This server cannot compare policies yet." : "Compare failed: " + err.message;
+      } finally {
+        $("compare").disabled = false;
+      }
+    });
+  }
+
+  // showCompare draws one card per run: policy, alarms, first alarm, pixels
+  // read, and a small statistic chart when the run carries its series.
+  function showCompare(r) {
+    const out = $("compare-out");
+    out.innerHTML = "";
+    const runs = Array.isArray(r) ? r : (r && (r.runs || r.results)) || [];
+    body.dataset.compareRuns = String(runs.length);
+    for (const run of runs) {
+      const rep = run.report || run;
+      const div = document.createElement("div");
+      div.className = "run" + (run.policy === (S.params && S.params.policy) ? " current" : "");
+      const h = document.createElement("h3");
+      h.textContent = run.policy || (rep.params && rep.params.policy) || "run";
+      div.appendChild(h);
+      const alarms = rep.alarms || [];
+      const first = alarms.length ? alarms[0].frame : null;
+      const lines = [
+        (Array.isArray(alarms) ? alarms.length : alarms) + (alarms.length === 1 ? " alarm" : " alarms"),
+        "first at frame " + (first === null ? "–" : first),
+        rep.pixels_read !== undefined ? intText(rep.pixels_read) + " pixels read" : "",
+        rep.control_limit !== undefined ? "limit " + fmt(rep.control_limit) : "",
+      ];
+      if (run.delay !== undefined) lines.push("delay " + fmt(run.delay, 1) + " frames");
+      for (const t of lines.filter(Boolean)) { const p = document.createElement("div"); p.textContent = t; div.appendChild(p); }
+      const g = run.g || rep.g;
+      if (Array.isArray(g) && g.length) {
+        const cv = document.createElement("canvas");
+        div.appendChild(cv);
+        requestAnimationFrame(() => miniChart(cv, run.frame || rep.frame, g, rep.control_limit || run.limit, alarms));
+      }
+      out.appendChild(div);
+    }
+    if (runs.length === 0) out.textContent = "The server answered with no runs.";
+  }
+
+  function miniChart(cv, fr, g, lim, alarms) {
+    const dpr = window.devicePixelRatio || 1;
+    const W = cv.width = Math.round(cv.clientWidth * dpr), H = cv.height = Math.round(cv.clientHeight * dpr);
+    const ctx = cv.getContext("2d");
+    const n = g.length, fmax = fr ? fr[n - 1] || 1 : n - 1 || 1;
+    let ymax = lim > 0 ? lim * 2 : Math.max(...g.filter(Number.isFinite), 1);
+    const X = (f) => f / fmax * (W - 2) + 1, Y = (v) => H - 1 - Math.min(v, ymax) / ymax * (H - 2);
+    ctx.fillStyle = COLORS.episode;
+    for (const a of alarms || []) ctx.fillRect(X(a.frame), 0, Math.max(2, X((a.end_frame >= 0 ? a.end_frame : fmax)) - X(a.frame)), H);
+    if (lim > 0) { ctx.strokeStyle = COLORS.limit; ctx.setLineDash([4, 3]); ctx.beginPath(); ctx.moveTo(0, Y(lim)); ctx.lineTo(W, Y(lim)); ctx.stroke(); ctx.setLineDash([]); }
+    ctx.strokeStyle = COLORS.g; ctx.beginPath();
+    for (let i = 0; i < n; i++) { const x = X(fr ? fr[i] : i), y = Y(g[i]); if (i) ctx.lineTo(x, y); else ctx.moveTo(x, y); }
+    ctx.stroke();
+  }
+
+  // ---------- share and snapshot ----------
+
+  function wireShare() {
+    $("share").addEventListener("click", async () => {
+      let u = S.shareURL || absURL((loadStore()[S.id] || {}).share_url);
+      if (!u) {
+        try {
+          const st = await api("GET", "/api/sessions/" + encodeURIComponent(S.id), undefined, S.token);
+          u = absURL(st.share_url);
+        } catch (e) { showError("Could not get the share link: " + e.message); return; }
+      }
+      if (!u) { showError("The server did not give a share link."); return; }
+      $("share-url").value = u;
+      $("share-box").hidden = false;
+      body.dataset.shareUrl = u;
+      $("share-url").select();
+    });
+    $("share-copy").addEventListener("click", () => {
+      const u = $("share-url").value;
+      if (navigator.clipboard) navigator.clipboard.writeText(u).catch(() => {});
+      $("share-url").select();
+    });
+  }
+
+  // snapshot saves the frame with the layers now shown, regions outlined, as a
+  // PNG drawn in the page at a whole-number scale.
+  function snapshot() {
+    if (!S.W || !S.H) return;
+    const f = Math.max(1, Math.min(16, Math.floor(1024 / Math.max(S.W, S.H))));
+    const scale = Math.max(S.W, S.H) > 2048 ? 2048 / Math.max(S.W, S.H) : f;
+    const c = document.createElement("canvas");
+    c.width = Math.round(S.W * scale); c.height = Math.round(S.H * scale) + 22;
+    const ctx = c.getContext("2d");
+    drawScene(ctx, c.width, c.height - 22, scale, 0, 0, Math.max(1, scale / 4));
+    ctx.setTransform(1, 0, 0, 1, 0, 0);
+    ctx.fillStyle = "#fff"; ctx.fillRect(0, c.height - 22, c.width, 22);
+    ctx.fillStyle = "#22262b"; ctx.font = "12px DejaVu Sans, sans-serif"; ctx.textBaseline = "middle";
+    const fr = S.cur ? S.cur.frame : -1;
+    ctx.fillText((S.name || S.id) + " · frame " + fr + " · " + (STATE_WORDS[body.dataset.state] || "") +
+      (S.cur ? " · statistic " + fmt(S.cur.g) + " / limit " + fmt(S.cur.limit) : ""), 6, c.height - 11);
+    c.toBlob((blob) => {
+      if (!blob) { showError("Could not make the picture."); return; }
+      const a = document.createElement("a");
+      a.href = URL.createObjectURL(blob);
+      a.download = "sparsewatch-" + S.id + "-frame" + fr + ".png";
+      body.dataset.snapshot = String(blob.size);
+      document.body.appendChild(a); a.click(); a.remove();
+      setTimeout(() => URL.revokeObjectURL(a.href), 5000);
+    }, "image/png");
+  }
+
+  // Hooks for tests and for the curious: read-only views of the page state.
+  window.sparsewatch = {
+    toCanvas, chartX: (f) => chartX(f) , state: S,
+    regionColor: COLORS.region, maskColor: COLORS.mask,
+  };
+
+  start();
+})();
