@@ -1,5 +1,22 @@
 module sparsewatch
 
-go 1.26
+go 1.26.0
 
-require gonum.org/v1/gonum v0.17.0 // indirect
+require (
+	github.com/gorilla/websocket v1.5.3
+	github.com/labstack/echo/v4 v4.16.0
+	golang.org/x/image v0.48.0
+	gonum.org/v1/gonum v0.17.0
+)
+
+require (
+	github.com/labstack/gommon v0.5.0 // indirect
+	github.com/mattn/go-colorable v0.1.15 // indirect
+	github.com/mattn/go-isatty v0.0.22 // indirect
+	github.com/valyala/bytebufferpool v1.0.0 // indirect
+	github.com/valyala/fasttemplate v1.2.2 // indirect
+	golang.org/x/crypto v0.53.0 // indirect
+	golang.org/x/net v0.56.0 // indirect
+	golang.org/x/sys v0.50.0 // indirect
+	golang.org/x/text v0.44.0 // indirect
+)

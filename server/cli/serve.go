@@ -3,9 +3,82 @@ package cli
 import (
 	"context"
 	"errors"
+	"fmt"
+	"log/slog"
+	"net"
+	"os"
+	"path/filepath"
+	"strings"
+
+	"sparsewatch/server"
 )
 
-// runServe is not built yet; its owner replaces this file.
+// multiFlag collects a repeatable string flag.
+type multiFlag []string
+
+func (m *multiFlag) String() string     { return strings.Join(*m, ",") }
+func (m *multiFlag) Set(v string) error { *m = append(*m, v); return nil }
+
+// runServe serves the page and the API. With no arguments at all it also
+// makes sure a demo scenario session is ready and prints its owner URL.
 func runServe(ctx context.Context, env Env, args []string) error {
-	return errors.New("serve: not built yet")
+	fs := newFlags(env, "serve", "serve [--addr 127.0.0.1:8080] [--data DIR] [--allow-camera-url PREFIX ...] [--demo NAME]")
+	addr := fs.String("addr", "127.0.0.1:8080", "listen address")
+	data := fs.String("data", defaultDataDir(), "data directory (sessions, uploads, alarm logs)")
+	maxUpload := fs.Int64("max-upload", 1<<30, "largest upload in bytes")
+	maxPixels := fs.Int("max-pixels", 64<<20, "largest frame in pixels (width x height)")
+	demo := fs.String("demo", "", "also start a session of this demo scenario (\"default\" = the first one)")
+	var allow multiFlag
+	fs.Var(&allow, "allow-camera-url", "URL prefix the server may fetch camera frames from (repeatable)")
+	if err := parse(fs, args); err != nil {
+		return err
+	}
+	if fs.NArg() > 0 {
+		fmt.Fprintf(env.Stderr, "serve: unexpected argument %q\n", fs.Arg(0))
+		return errUsage
+	}
+	if len(args) == 0 {
+		*demo = "default"
+	}
+	log := slog.New(slog.NewTextHandler(env.Stderr, &slog.HandlerOptions{Level: slog.LevelInfo}))
+	srv, err := server.New(server.Options{
+		DataDir: *data, Addr: *addr, MaxUploadBytes: *maxUpload, MaxPixels: *maxPixels,
+		AllowCameraURL: allow, Logger: log,
+	})
+	if err != nil {
+		return err
+	}
+	ln, err := net.Listen("tcp", *addr)
+	if err != nil {
+		srv.Close()
+		return fmt.Errorf("listen on %s: %w", *addr, err)
+	}
+	base := "http://" + ln.Addr().String()
+	srv.SetBaseURL(base)
+	fmt.Fprintf(env.Stdout, "sparsewatch: serving %s (data in %s)\n", base, *data)
+	if *demo != "" {
+		url, err := srv.EnsureDemo(*demo)
+		if err != nil {
+			fmt.Fprintf(env.Stderr, "sparsewatch: no demo session: %v\n", err)
+		} else {
+			fmt.Fprintf(env.Stdout, "demo session (owner link): %s\n", url)
+		}
+	}
+	err = srv.Serve(ctx, ln)
+	if errors.Is(err, context.Canceled) {
+		return nil
+	}
+	return err
+}
+
+// defaultDataDir is ./sparsewatch-data next to where the command runs,
+// or the user's cache directory when the working directory is unknown.
+func defaultDataDir() string {
+	if wd, err := os.Getwd(); err == nil {
+		return filepath.Join(wd, "sparsewatch-data")
+	}
+	if d, err := os.UserCacheDir(); err == nil {
+		return filepath.Join(d, "sparsewatch")
+	}
+	return "sparsewatch-data"
 }
