@@ -222,7 +222,16 @@
     if (rf > 0) p.reference_frames = rf;
     const a = parseFloat(f.querySelector("[name=arl0]").value);
     if (a > 0) p.arl0 = a;
+    const pace = parseFloat(f.querySelector("[name=pace]").value);
+    if (pace >= 0) p.pace = pace;
     return p;
+  }
+
+  // uploadName is the folder's name when a folder was chosen, else the file's.
+  function uploadName() {
+    const rel = picked[0] && picked[0].webkitRelativePath;
+    if (rel && rel.includes("/")) return rel.split("/")[0];
+    return picked.length === 1 ? picked[0].name : picked.length + " files";
   }
 
   function upload() {
@@ -231,6 +240,7 @@
     // Natural order is the server's job; we keep the folder's names.
     for (const f of picked) fd.append("files", f, f.name);
     fd.append("params", JSON.stringify(newParams()));
+    fd.append("name", uploadName());
     const xhr = new XMLHttpRequest();
     const prog = $("upload-progress");
     const total = picked.reduce((a, f) => a + f.size, 0);
@@ -253,7 +263,7 @@
         return;
       }
       setProgress(prog, 1, "uploaded, opening the session…");
-      goToSession(data, picked.length === 1 ? picked[0].name : picked.length + " files");
+      goToSession(data, uploadName());
     };
     xhr.open("POST", "/api/sessions");
     xhr.send(fd);
@@ -403,8 +413,7 @@
   function onHello(m) {
     resetHistory();
     S.role = m.role || S.role;
-    S.W = m.width | 0; S.H = m.height | 0;
-    S.gw = m.grid_w | 0; S.gh = m.grid_h | 0; S.tile = m.tile || 1;
+    setGeometry(m.width, m.height, m.grid_w, m.grid_h, m.tile);
     S.params = m.params || {};
     if (m.share_url) S.shareURL = absURL(m.share_url);
     const h = m.history || {};
@@ -416,8 +425,6 @@
       S.st.push(h.state ? h.state[i] : -1);
     }
     for (const a of h.alarms || []) addAlarm(a);
-    $("f-size").textContent = S.W + " × " + S.H + " pixels" + (S.tile > 1 ? ", tiles of " + S.tile + " × " + S.tile : "") +
-      " (" + intText(S.gw * S.gh) + " streams)";
     onStatus(m.session || {});
     fillSettings(S.params);
     if (S.fr.length) body.dataset.frame = String(S.fr[S.fr.length - 1]);
@@ -427,8 +434,23 @@
     dirty(); dirtyChart();
   }
 
+  function setGeometry(w, h, gw, gh, tile) {
+    S.W = w | 0; S.H = h | 0; S.tile = tile || 1;
+    S.gw = gw | 0 || Math.ceil(S.W / S.tile); S.gh = gh | 0 || Math.ceil(S.H / S.tile);
+    $("f-size").textContent = S.W ? S.W + " × " + S.H + " pixels" + (S.tile > 1 ? ", tiles of " + S.tile + " × " + S.tile : "") +
+      " (" + intText(S.gw * S.gh) + " streams)" : "not known yet";
+  }
+
   function onStatus(s) {
+    // A run that starts over (new settings) reports frame -1: drop the old history.
+    if (s.frame === -1 && (S.fr.length > 0 || S.cur)) resetHistory();
     S.status = Object.assign(S.status, s);
+    if (s.width && s.height && (s.width !== S.W || s.height !== S.H || s.grid_w !== S.gw)) {
+      setGeometry(s.width, s.height, s.grid_w, s.grid_h, s.tile);
+      fitView();
+    }
+    if (s.calibration) onCalibration(s.calibration);
+    if (s.state === "failed" && s.message) showError("The review stopped: " + s.message);
     if (s.name) { S.name = s.name; $("session-name").textContent = s.name; document.title = s.name + " – sparsewatch"; }
     if (s.params) { S.params = s.params; }
     if (s.state) setState(s.state);
@@ -519,7 +541,9 @@
       if (i >= 0 && S.fr[i] === u.frame) { S.g[i] = u.g; S.lim[i] = u.limit; S.st[i] = u.state; }
     }
     if (u.limit > 0) S.limit = u.limit;
-    maskLayer(u);
+    if (!(u.state === 3 && u.mask.length === 0)) maskLayer(u);
+    else if (S.prevMask) { u.mw = S.prevMask.mw; u.mh = S.prevMask.mh; u.scale = S.prevMask.scale; u.readCount = S.prevMask.readCount; }
+    S.prevMask = { mw: u.mw, mh: u.mh, scale: u.scale, readCount: u.readCount };
     const st = WIRE_STATES[u.state];
     const shown = body.dataset.state;
     if (st && !(st === "learning" && shown === "calibrating")) setState(st);
@@ -735,23 +759,47 @@
       ctx.drawImage(S.heat.canvas, 0, 0, S.heat.w * e, S.heat.h * e);
       ctx.globalAlpha = 1;
     }
-    if ($("show-mask").checked && layers.mask && S.cur) {
-      const e = S.cur.scale * S.tile;
+    const e = S.cur ? S.cur.scale * S.tile : 1;
+    const hollow = zoom * e >= 10 * lw; // zoomed in: outline read cells so the pixel stays visible
+    if ($("show-mask").checked && layers.mask && S.cur && !hollow) {
       ctx.globalAlpha = S.preview ? 0.55 : 0.8;
       ctx.drawImage(layers.mask.canvas, 0, 0, S.cur.mw * e, S.cur.mh * e);
       ctx.globalAlpha = 1;
     }
     ctx.setTransform(1, 0, 0, 1, 0, 0);
+    if ($("show-mask").checked && layers.mask && S.cur && hollow) {
+      const u = S.cur, mpx = layers.mask.px;
+      const cx0 = Math.max(0, Math.floor(px / e)), cy0 = Math.max(0, Math.floor(py / e));
+      const cx1 = Math.min(u.mw - 1, Math.floor((px + w / zoom) / e)), cy1 = Math.min(u.mh - 1, Math.floor((py + h / zoom) / e));
+      const [r, g, b] = COLORS.mask;
+      ctx.strokeStyle = "rgb(" + r + "," + g + "," + b + ")";
+      ctx.lineWidth = Math.max(1, Math.min(3 * lw, zoom * e / 8));
+      const inset = ctx.lineWidth / 2 + lw;
+      ctx.beginPath();
+      for (let cy = cy0; cy <= cy1; cy++) {
+        for (let cx = cx0; cx <= cx1; cx++) {
+          if (mpx[cy * u.mw + cx] === 0) continue;
+          const x = (cx * e - px) * zoom, y = (cy * e - py) * zoom, s = e * zoom;
+          ctx.rect(x + inset, y + inset, s - 2 * inset, s - 2 * inset);
+        }
+      }
+      ctx.stroke();
+    }
     // Frame border, so a small frame is easy to find.
     ctx.strokeStyle = "#6d7178";
     ctx.lineWidth = 1;
     ctx.strokeRect(Math.round(-px * zoom) - 0.5, Math.round(-py * zoom) - 0.5, Math.round(S.W * zoom) + 1, Math.round(S.H * zoom) + 1);
     if ($("show-regions").checked) {
+      // Besides the live regions: the alarm picked on the chart or list, or
+      // else the latest alarm once it is over, dashed.
+      const live = S.cur && S.cur.regions.length > 0;
       const pa = S.picked >= 0 ? alarmAt(S.picked) : null;
-      if (pa && (!S.cur || S.cur.regions.length === 0 || pa.frame !== alarmAt(S.cur.frame)?.frame)) {
-        for (const r of pa.regions || []) {
+      const eps = alarmEpisodes();
+      const old = pa || (!live && eps.length ? eps[eps.length - 1][2] : null);
+      if (old && (!live || old.frame !== (alarmAt(S.cur.frame) || {}).frame)) {
+        for (const r of old.regions || []) {
           const b = r.bbox || [0, 0, 0, 0];
-          drawBox(ctx, { x0: b[0], y0: b[1], x1: b[2], y1: b[3], peak: r.peak }, zoom, px, py, lw, COLORS.picked, true);
+          drawBox(ctx, { x0: b[0], y0: b[1], x1: b[2], y1: b[3], peak: r.peak }, zoom, px, py, lw, pa ? COLORS.picked : COLORS.region, true);
         }
       }
       if (S.cur) for (const r of S.cur.regions) drawBox(ctx, r, zoom, px, py, lw, COLORS.region, false);
@@ -896,14 +944,15 @@
     // Axes and grid.
     ctx.strokeStyle = "#d9d6cc"; ctx.lineWidth = 1; ctx.fillStyle = "#6a6f76";
     ctx.textAlign = "right"; ctx.textBaseline = "middle";
-    for (let i = 0; i <= 4; i++) {
-      const v = chart.ymax * i / 4, y = Math.round(chartY(v)) + 0.5;
+    const ys = niceStep(chart.ymax / 4);
+    for (let v = 0; v <= chart.ymax * 1.0001; v += ys) {
+      const y = Math.round(chartY(v)) + 0.5;
       ctx.beginPath(); ctx.moveTo(chart.x0, y); ctx.lineTo(chart.x1, y); ctx.stroke();
-      ctx.fillText(fmt(v, v < 10 ? 1 : 0), chart.x0 - 4 * dpr, y);
+      ctx.fillText(ys < 1 ? v.toFixed(-Math.floor(Math.log10(ys))) : String(Math.round(v)), chart.x0 - 4 * dpr, y);
     }
     ctx.textAlign = "center"; ctx.textBaseline = "top";
     const step = niceStep(chart.fmax / 6);
-    for (let f = 0; f <= chart.fmax; f += step) ctx.fillText(String(f), chartX(f), chart.y1 + 5 * dpr);
+    for (let f = 0; f <= chart.fmax; f += Math.max(1, Math.round(step))) ctx.fillText(String(f), chartX(f), chart.y1 + 5 * dpr);
     // Control limit (per-frame values, drawn as steps).
     if (n || lim > 0) {
       ctx.strokeStyle = COLORS.limit; ctx.lineWidth = 1.5 * dpr; ctx.setLineDash([6 * dpr, 4 * dpr]);
@@ -950,7 +999,8 @@
     body.dataset.chartEpisodes = String(S.alarms.size);
   }
   function niceStep(x) {
-    const p = 10 ** Math.floor(Math.log10(Math.max(x, 1)));
+    if (!(x > 0)) return 1;
+    const p = 10 ** Math.floor(Math.log10(x));
     for (const m of [1, 2, 5, 10]) if (m * p >= x) return m * p;
     return 10 * p;
   }
@@ -1020,7 +1070,7 @@
 
   function fillSettings(p) {
     if (!p) return;
-    for (const k of ["budget", "policy", "top_r", "shift", "compensation", "tile", "reference_frames", "model", "arl0"]) {
+    for (const k of ["budget", "policy", "top_r", "shift", "compensation", "tile", "reference_frames", "model", "arl0", "pace"]) {
       const el = field(k);
       if (el && p[k] !== undefined && document.activeElement !== el) el.value = p[k];
     }
@@ -1055,7 +1105,7 @@
       const v = parseInt(field(k).value, 10);
       if (Number.isFinite(v)) p[k] = v;
     }
-    for (const k of ["shift", "compensation"]) {
+    for (const k of ["shift", "compensation", "pace"]) {
       const v = parseFloat(field(k).value);
       if (Number.isFinite(v)) p[k] = v;
     }
@@ -1077,7 +1127,7 @@
         const st = await api("PATCH", "/api/sessions/" + encodeURIComponent(S.id) + "/params", collectParams(), S.token);
         msg.textContent = "Applied; the review starts again from frame 0.";
         resetHistory();
-        if (st && typeof st === "object") onStatus(st.session || st);
+        if (st && typeof st === "object") onStatus(st);
         fillSettings(S.params);
         dirty(); dirtyChart();
       } catch (err) {
@@ -1090,8 +1140,13 @@
       setProgress($("cal-progress"), 0, "starting…");
       $("cal-result").textContent = "";
       try {
-        const r = await api("POST", "/api/sessions/" + encodeURIComponent(S.id) + "/calibrate", Object.assign(collectParams(), { arl0: a }), S.token);
-        if (r && typeof r === "object" && (r.limit || r.progress !== undefined)) onCalibration(Object.assign({ progress: 1 }, r));
+        // The server sets the limit when a run starts: changing only the
+        // target starts a new run, which calibrates first.
+        if (!(a > 0)) throw new Error("give a positive false-alarm target");
+        const st = await api("PATCH", "/api/sessions/" + encodeURIComponent(S.id) + "/params", { arl0: a }, S.token);
+        resetHistory();
+        if (st && typeof st === "object") onStatus(st);
+        $("settings-msg").textContent = "New target sent; the limit is being set, then the review starts again.";
       } catch (err) {
         setProgress($("cal-progress"), 0, "failed");
         $("cal-result").textContent = "Could not set the limit: " + err.message;
