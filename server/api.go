@@ -254,11 +254,15 @@ func (s *Server) handleList(c echo.Context) error {
 }
 
 func (s *Server) handleStatus(c echo.Context) error {
-	sess, _, err := s.authorize(c, false)
+	sess, role, err := s.authorize(c, false)
 	if err != nil {
 		return err
 	}
-	return c.JSON(http.StatusOK, sess.Status())
+	st := sess.Status()
+	if role == roleOwner {
+		st.ShareURL = s.shareURL(sess.metaCopy().ShareToken)
+	}
+	return c.JSON(http.StatusOK, st)
 }
 
 func (s *Server) handleReport(c echo.Context) error {
@@ -347,5 +351,5 @@ func (s *Server) handleShareLookup(c echo.Context) error {
 	if sess == nil {
 		return errorf(KindNotFound, "this share link is not valid")
 	}
-	return c.JSON(http.StatusOK, map[string]string{"id": sess.meta.ID, "role": roleViewer})
+	return c.JSON(http.StatusOK, map[string]string{"id": sess.metaCopy().ID, "role": roleViewer})
 }

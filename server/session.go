@@ -74,6 +74,10 @@ type Status struct {
 	Budget      int          `json:"budget"` // streams read per frame
 	Calibration *Calibration `json:"calibration,omitempty"`
 	Message     string       `json:"message,omitempty"` // why it failed
+	// FramesPerSecond is the review's speed over the watched frames so far
+	// (frame loop only: reference learning and calibration excluded).
+	FramesPerSecond float64 `json:"frames_per_second"`
+	ShareURL        string  `json:"share_url,omitempty"` // owner requests only
 }
 
 // Session is one review: its metadata, live status, chart history and the
@@ -113,6 +117,8 @@ type runState struct {
 	paceStart   time.Time
 	paceFrames  int
 	local       []float32
+	watchStart  time.Time // first watched frame of this process
+	watched     int       // watched frames since watchStart
 }
 
 func newSession(srv *Server, dir string, m meta) *Session {
@@ -133,6 +139,13 @@ func (s *Session) resetStatus() {
 	s.alarms, s.report = nil, nil
 	s.logged = map[string]bool{}
 	s.resumeAfter = -1
+}
+
+// metaCopy returns session.json's content.
+func (s *Session) metaCopy() meta {
+	s.mu.Lock()
+	defer s.mu.Unlock()
+	return s.meta
 }
 
 // Status returns a copy of the session's status.
@@ -462,6 +475,12 @@ func (s *Session) onFrame(ctx context.Context, fu frameUpdate) error {
 	s.st.FramesSeen++
 	if !fu.Learning {
 		s.addHistoryLocked(fu.Frame, fu.G)
+		if s.run.watchStart.IsZero() {
+			s.run.watchStart = time.Now()
+		} else {
+			s.run.watched++
+			s.st.FramesPerSecond = float64(s.run.watched) / time.Since(s.run.watchStart).Seconds()
+		}
 	}
 	if changed {
 		s.publishStatusLocked()

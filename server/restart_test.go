@@ -1,0 +1,204 @@
+package server
+
+import (
+	"bufio"
+	"context"
+	"encoding/json"
+	"net/http"
+	"os"
+	"os/exec"
+	"path/filepath"
+	"reflect"
+	"strconv"
+	"strings"
+	"syscall"
+	"testing"
+	"time"
+)
+
+// restartParams are small enough for a quick review and calibration.
+const restartParams = `{"budget":"10%","top_r":4,"arl0":500,"reference_frames":20,"seed":7`
+
+// child is a `sparsewatch serve` process.
+type child struct {
+	cmd *exec.Cmd
+	url string
+}
+
+func startChild(t *testing.T, bin, data string) *child {
+	t.Helper()
+	cmd := exec.Command(bin, "serve", "--addr", "127.0.0.1:0", "--data", data)
+	out, err := cmd.StdoutPipe()
+	if err != nil {
+		t.Fatal(err)
+	}
+	if testing.Verbose() {
+		cmd.Stderr = os.Stderr
+	}
+	if err := cmd.Start(); err != nil {
+		t.Fatal(err)
+	}
+	urlc := make(chan string, 1)
+	go func() {
+		sc := bufio.NewScanner(out)
+		for sc.Scan() {
+			if _, rest, ok := strings.Cut(sc.Text(), "serving "); ok {
+				urlc <- strings.Fields(rest)[0]
+			}
+		}
+	}()
+	select {
+	case u := <-urlc:
+		return &child{cmd: cmd, url: u}
+	case <-time.After(30 * time.Second):
+		cmd.Process.Kill()
+		t.Fatal("child did not print its address")
+	}
+	return nil
+}
+
+func (c *child) getJSON(t *testing.T, path, tok string, v any) int {
+	t.Helper()
+	req, _ := http.NewRequest("GET", c.url+path, nil)
+	if tok != "" {
+		req.Header.Set("Authorization", "Bearer "+tok)
+	}
+	res, err := http.DefaultClient.Do(req)
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer res.Body.Close()
+	if v != nil {
+		json.NewDecoder(res.Body).Decode(v)
+	}
+	return res.StatusCode
+}
+
+func waitFor(t *testing.T, what string, limit time.Duration, ok func() bool) {
+	t.Helper()
+	deadline := time.Now().Add(limit)
+	for !ok() {
+		if time.Now().After(deadline) {
+			t.Fatalf("timed out waiting for %s", what)
+		}
+		time.Sleep(50 * time.Millisecond)
+	}
+}
+
+// TestRestartResumesReview kills the server binary with SIGKILL in the
+// middle of a paced review, starts it again on the same data directory and
+// checks: the session is listed, every alarm logged before the kill is
+// still there, no alarm event is logged twice, and the resumed review ends
+// with the same report as an uninterrupted run of the same frames.
+func TestRestartResumesReview(t *testing.T) {
+	if testing.Short() {
+		t.Skip("builds the binary and runs two processes")
+	}
+	bin := filepath.Join(t.TempDir(), "sparsewatch")
+	build := exec.Command("go", "build", "-o", bin, "sparsewatch")
+	if out, err := build.CombinedOutput(); err != nil {
+		t.Fatalf("go build: %v\n%s", err, out)
+	}
+	frames := synthFrames(t, 32, 24, 170, [][2]int{{60, 90}, {120, 150}})
+
+	// Reference: the same frames and params, uninterrupted, in process.
+	ref := mustServer(t, Options{})
+	rc := ref.mustUpload(t, frames, restartParams+`,"pace":0}`)
+	want := waitReport(t, ref.Server, rc.ID)
+	if len(want.Alarms) < 2 {
+		t.Fatalf("reference run found %d alarms, want the 2 planted ones: %+v", len(want.Alarms), want)
+	}
+
+	data := t.TempDir()
+	c1 := startChild(t, bin, data)
+	body, ct := multipartBody(t, frames, restartParams+`,"pace":60}`)
+	res, err := http.Post(c1.url+"/api/sessions", ct, body)
+	if err != nil {
+		t.Fatal(err)
+	}
+	var cr createdResponse
+	json.NewDecoder(res.Body).Decode(&cr)
+	res.Body.Close()
+	if res.StatusCode != http.StatusCreated {
+		t.Fatalf("upload to child: %d", res.StatusCode)
+	}
+	// Kill once the first alarm has ended and the review is past frame 100.
+	waitFor(t, "frame 100 in the child", 60*time.Second, func() bool {
+		var st Status
+		c1.getJSON(t, "/api/sessions/"+cr.ID, cr.OwnerToken, &st)
+		return st.Frame >= 100
+	})
+	c1.cmd.Process.Signal(syscall.SIGKILL)
+	c1.cmd.Wait()
+	sessDir := filepath.Join(data, "sessions", cr.ID)
+	before, err := readAlarmEvents(sessDir)
+	if err != nil || len(before) < 2 {
+		t.Fatalf("alarm events logged before the kill: %d (%v), want start and end of the first", len(before), err)
+	}
+
+	c2 := startChild(t, bin, data)
+	defer func() { c2.cmd.Process.Kill(); c2.cmd.Wait() }()
+	var list struct{ Sessions []Status }
+	c2.getJSON(t, "/api/sessions", "", &list)
+	if len(list.Sessions) != 1 || list.Sessions[0].ID != cr.ID {
+		t.Fatalf("after restart the list is %+v, want session %s", list.Sessions, cr.ID)
+	}
+	var st Status
+	waitFor(t, "the resumed review to finish", 90*time.Second, func() bool {
+		c2.getJSON(t, "/api/sessions/"+cr.ID, cr.OwnerToken, &st)
+		return st.State == StateFinished || st.State == StateFailed
+	})
+	var got Report
+	c2.getJSON(t, "/api/sessions/"+cr.ID+"/report", cr.ShareToken, &got)
+	if !reflect.DeepEqual(got.Alarms, want.Alarms) {
+		t.Fatalf("resumed alarms differ from an uninterrupted run:\n got %+v\nwant %+v", got.Alarms, want.Alarms)
+	}
+	after, _ := readAlarmEvents(sessDir)
+	seen := map[string]bool{}
+	for _, ev := range after {
+		k := ev.Event + ":" + strconv.Itoa(ev.Alarm.Frame)
+		if seen[k] {
+			t.Fatalf("alarm event %s at frame %d logged twice", ev.Event, ev.Alarm.Frame)
+		}
+		seen[k] = true
+	}
+	for _, ev := range before {
+		if !seen[ev.Event+":"+strconv.Itoa(ev.Alarm.Frame)] {
+			t.Fatalf("alarm event %s at frame %d lost after the restart", ev.Event, ev.Alarm.Frame)
+		}
+	}
+	if len(after) != 2*len(want.Alarms) {
+		t.Fatalf("%d alarm events logged, want start and end of %d alarms", len(after), len(want.Alarms))
+	}
+	rows, _ := readStats(sessDir)
+	for i := 1; i < len(rows); i++ {
+		if rows[i].Frame != rows[i-1].Frame+1 {
+			t.Fatalf("stats.csv frame %d follows %d", rows[i].Frame, rows[i-1].Frame)
+		}
+	}
+}
+
+// waitReport waits for an in-process session to finish and returns its report.
+func waitReport(t *testing.T, s *Server, id string) Report {
+	t.Helper()
+	sess, err := s.session(id)
+	if err != nil {
+		t.Fatal(err)
+	}
+	ctx, cancel := context.WithTimeout(context.Background(), 120*time.Second)
+	defer cancel()
+	for {
+		st := sess.Status()
+		if st.State == StateFinished {
+			return sess.Report()
+		}
+		if st.State == StateFailed {
+			t.Fatalf("review failed: %s (errors %v)", st.Message, st.Errors)
+		}
+		select {
+		case <-ctx.Done():
+			t.Fatalf("review did not finish: %+v", st)
+		case <-time.After(20 * time.Millisecond):
+		}
+	}
+}
