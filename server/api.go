@@ -38,6 +38,9 @@ func (s *Server) routes() *echo.Echo {
 	e.GET("/api/sessions/:id/alarms.jsonl", s.handleAlarmsJSONL)
 	e.GET("/api/sessions/:id/stats.csv", s.handleStatsCSV)
 	e.PATCH("/api/sessions/:id/params", s.handleParams)
+	// calibrate = new parameters (usually arl0) and a fresh review, whose
+	// calibration progress reaches the viewers as "calibration" messages.
+	e.POST("/api/sessions/:id/calibrate", s.handleParams)
 	e.GET("/api/share/:token", s.handleShareLookup)
 	e.GET("/ws/sessions/:id", s.handleWS)
 
