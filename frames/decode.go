@@ -164,7 +164,7 @@ func CheckSize(w, h, maxPixels int64) error {
 // UnsupportedError naming the format; io.EOF means the file was cut short.
 func wrapDecodeErr(f Format, err error) error {
 	name := strings.ToUpper(string(f))
-	if errors.Is(err, io.EOF) || errors.Is(err, io.ErrUnexpectedEOF) {
+	if errors.Is(err, io.EOF) || errors.Is(err, io.ErrUnexpectedEOF) || strings.Contains(err.Error(), "not enough pixel data") {
 		return FormatError(name + " data ends early (truncated file)")
 	}
 	var pu png.UnsupportedError
