@@ -85,4 +85,3 @@ func (sp Synthetic) ChangedPixels() []int32 {
 	}
 	return out
 }
-
