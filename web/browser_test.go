@@ -3,6 +3,15 @@ package web_test
 import (
 	"bytes"
 	"context"
+	"fmt"
+	"image"
+	"image/png"
+	"io"
+	"log/slog"
+	"math"
+	"math/rand/v2"
+	"net/http"
+	"net/http/httptest"
 	"os"
 	"path/filepath"
 	"strings"
@@ -10,6 +19,8 @@ import (
 	"time"
 
 	"github.com/chromedp/chromedp"
+
+	"sparsewatch/server"
 )
 
 const chromiumPath = "/usr/bin/chromium"
@@ -47,10 +58,21 @@ func newBrowser(t *testing.T, timeout time.Duration) context.Context {
 		stopAlloc()
 		stop()
 		if t.Failed() {
-			t.Logf("chromium log:\n%s", tail(logBuf.String(), 4000))
+			t.Logf("chromium log (dbus noise left out):\n%s", tail(withoutDbus(logBuf.String()), 4000))
 		}
 	})
 	return tab
+}
+
+// withoutDbus drops chromium's harmless "Failed to connect to the bus" lines.
+func withoutDbus(s string) string {
+	var b strings.Builder
+	for _, l := range strings.Split(s, "\n") {
+		if !strings.Contains(l, "dbus") {
+			b.WriteString(l + "\n")
+		}
+	}
+	return b.String()
 }
 
 func tail(s string, n int) string {
@@ -81,8 +103,18 @@ func shot(t *testing.T, tab context.Context, name string) {
 // poll waits until the JS expression is truthy and returns its value.
 func poll[T any](t *testing.T, tab context.Context, what, expr string, timeout time.Duration) T {
 	t.Helper()
-	v, err := chromedp.Run(tab, chromedp.Poll[T](expr,
-		chromedp.WithPollingInterval(50*time.Millisecond), chromedp.WithPollingTimeout(timeout)))
+	deadline := time.Now().Add(timeout)
+	var v T
+	var err error
+	for {
+		v, err = chromedp.Run(tab, chromedp.Poll[T](expr,
+			chromedp.WithPollingInterval(50*time.Millisecond), chromedp.WithPollingTimeout(time.Until(deadline))))
+		// A navigation (upload -> owner view) ends the poll; poll the new page.
+		if err == nil || time.Now().After(deadline) || !(strings.Contains(err.Error(), "navigated") || strings.Contains(err.Error(), "Cannot find context")) {
+			break
+		}
+		time.Sleep(50 * time.Millisecond)
+	}
 	if err != nil {
 		state, _ := chromedp.Run(tab, chromedp.Evaluate[string](`JSON.stringify(document.body.dataset)`))
 		t.Fatalf("waiting for %s: %v\npage state: %s", what, err, state)
@@ -97,4 +129,245 @@ func eval[T any](t *testing.T, tab context.Context, expr string) T {
 		t.Fatalf("evaluate %s: %v", strings.TrimSpace(expr), err)
 	}
 	return v
+}
+
+// Planted change of the test frames: a bright square appears at frame
+// changeFrame and stays to the end.
+const (
+	testW, testH    = 32, 24 // small: calibration time grows with the stream count
+	testFrames      = 160
+	testRef         = 30
+	changeFrame     = 80
+	spotX0, spotY0  = 20, 10
+	spotSide        = 4
+	spotRise        = 45 // grey levels, about 6 noise sigma
+	noiseSigma      = 7
+	regionTolerance = 3 // pixels a found box may miss the planted one by
+)
+
+// writeFrames writes testFrames 8-bit grey PNGs: a gradient with Gaussian
+// noise, and from changeFrame on a bright square. Names count from 1 with
+// no zero padding, so the server's natural sort order is exercised too.
+func writeFrames(t *testing.T) []string {
+	t.Helper()
+	dir := t.TempDir()
+	rng := rand.New(rand.NewPCG(7, 11))
+	var paths []string
+	for f := 0; f < testFrames; f++ {
+		img := image.NewGray(image.Rect(0, 0, testW, testH))
+		for y := 0; y < testH; y++ {
+			for x := 0; x < testW; x++ {
+				v := 70 + 2*float64(x) + float64(y) + rng.NormFloat64()*noiseSigma
+				if f >= changeFrame && x >= spotX0 && x < spotX0+spotSide && y >= spotY0 && y < spotY0+spotSide {
+					v += spotRise
+				}
+				img.Pix[y*img.Stride+x] = uint8(math.Max(0, math.Min(255, math.Round(v))))
+			}
+		}
+		var buf bytes.Buffer
+		if err := png.Encode(&buf, img); err != nil {
+			t.Fatal(err)
+		}
+		p := filepath.Join(dir, fmt.Sprintf("frame%d.png", f+1))
+		if err := os.WriteFile(p, buf.Bytes(), 0o644); err != nil {
+			t.Fatal(err)
+		}
+		paths = append(paths, p)
+	}
+	return paths
+}
+
+// TestWatchUploadShare drives the page as a user would: upload a folder of
+// frames through the file input, watch the review, see the alarm on the
+// chart and its region on the frame view, then open the share link in a
+// second tab that follows the same frames and cannot change anything.
+func TestWatchUploadShare(t *testing.T) {
+	paths := writeFrames(t)
+	srv, err := server.New(server.Options{DataDir: t.TempDir(), Logger: slog.New(slog.NewTextHandler(io.Discard, nil))})
+	if err != nil {
+		t.Fatal(err)
+	}
+	ts := httptest.NewServer(srv.Handler())
+	t.Cleanup(func() { ts.Close(); srv.Close() })
+	srv.SetBaseURL(ts.URL)
+
+	tab := newBrowser(t, 90*time.Second)
+	if err := chromedp.Do(tab, chromedp.Navigate(ts.URL+"/")); err != nil {
+		t.Fatal(err)
+	}
+	poll[bool](t, tab, "the start page", `document.body.dataset.state === "home"`, 5*time.Second)
+	shot(t, tab, "1-start")
+	// Settings for the new session, then the files.
+	eval[bool](t, tab, fmt.Sprintf(`(() => {
+		const f = document.getElementById("new-settings");
+		f.open = true;
+		f.querySelector("[name=reference_frames]").value = %d;
+		f.querySelector("[name=budget]").value = "10%%";
+		f.querySelector("[name=arl0]").value = 500;
+		f.querySelector("[name=tile]").value = 2;
+		f.querySelector("[name=pace]").value = 40;
+		return true; })()`, testRef))
+	if err := chromedp.Do(tab, chromedp.SetUploadFiles(chromedp.CSS("#files"), paths)); err != nil {
+		t.Fatal(err)
+	}
+	poll[bool](t, tab, "the picked files", fmt.Sprintf(`document.body.dataset.picked === "%d"`, testFrames), 5*time.Second)
+	if err := chromedp.Do(tab, chromedp.Click(chromedp.CSS("#send"))); err != nil {
+		t.Fatal(err)
+	}
+	poll[bool](t, tab, "the owner view", `location.pathname.startsWith("/watch/") && document.body.dataset.role === "owner"`, 10*time.Second)
+	poll[bool](t, tab, "the first watched frame", `["watching", "alarm"].includes(document.body.dataset.state)`, 40*time.Second)
+	shot(t, tab, "2-first-frames")
+
+	// The share link, opened in a second tab of the same browser.
+	if err := chromedp.Do(tab, chromedp.Click(chromedp.CSS("#share"))); err != nil {
+		t.Fatal(err)
+	}
+	shareURL := poll[string](t, tab, "the share link", `document.body.dataset.shareUrl || ""`, 5*time.Second)
+	if !strings.Contains(shareURL, "/share/") {
+		t.Fatalf("share link %q does not point at /share/", shareURL)
+	}
+	viewer, stopViewer := chromedp.NewContext(tab)
+	defer stopViewer()
+	if err := chromedp.Do(viewer, chromedp.Navigate(shareURL)); err != nil {
+		t.Fatal(err)
+	}
+	poll[bool](t, viewer, "the viewer's first frame", `document.body.dataset.role === "viewer" && +document.body.dataset.frame >= 0`, 10*time.Second)
+	f1 := eval[int](t, viewer, `+document.body.dataset.frame`)
+	f2 := poll[int](t, viewer, "the viewer's frames to advance", fmt.Sprintf(`+document.body.dataset.frame > %d && +document.body.dataset.frame`, f1), 10*time.Second)
+	ownerNow := eval[int](t, tab, `+document.body.dataset.frame`)
+	viewerNow := eval[int](t, viewer, `+document.body.dataset.frame`)
+	// Both follow the one review: the latest frames are close (frame
+	// updates are sent at most 30 a second, latest wins).
+	if d := ownerNow - viewerNow; d < -10 || d > 10 {
+		t.Errorf("owner at frame %d, viewer at frame %d: they should follow the same review", ownerNow, viewerNow)
+	}
+	t.Logf("viewer frames %d -> %d; owner %d, viewer %d", f1, f2, ownerNow, viewerNow)
+
+	// The viewer has no working controls, and a write with its token is refused.
+	ctl := eval[map[string]any](t, viewer, `(() => ({
+		fieldsDisabled: document.getElementById("settings-fields").disabled,
+		applyShown: document.getElementById("apply").offsetParent !== null,
+		compareShown: document.getElementById("compare").offsetParent !== null,
+		shareShown: document.getElementById("share").offsetParent !== null,
+		budgetDisabled: document.querySelector("#settings [name=budget]").matches(":disabled"),
+	}))()`)
+	for k, want := range map[string]bool{"fieldsDisabled": true, "applyShown": false, "compareShown": false, "shareShown": false, "budgetDisabled": true} {
+		if ctl[k] != want {
+			t.Errorf("viewer tab: %s = %v, want %v", k, ctl[k], want)
+		}
+	}
+	code, err := chromedp.Run(viewer, chromedp.Evaluate[int](`fetch("/api/sessions/" + document.body.dataset.session + "/params", {
+		method: "PATCH", headers: {"Authorization": "Bearer " + sparsewatch.state.token, "Content-Type": "application/json"},
+		body: JSON.stringify({budget: "50%"})}).then(r => r.status)`, chromedp.EvalAwaitPromise))
+	if err != nil || code != http.StatusForbidden {
+		t.Errorf("PATCH params with the share token: status %d (%v), want 403", code, err)
+	}
+	shot(t, viewer, "3-share-tab")
+
+	// The alarm: listed, shaded on the chart, its region outlined on the
+	// frame view. Probe the canvas in the same turn as the drawing it
+	// describes (drawnRegions is set by the draw), once an alarm that began
+	// after the planted change is on.
+	probe := poll[map[string]any](t, tab, "the alarm", fmt.Sprintf(`(() => {
+		const d = document.body.dataset;
+		const regs = JSON.parse(d.drawnRegions || "[]");
+		const cur = +d.drawn;
+		const starts = [...sparsewatch.state.alarms.keys()].filter((f) => f <= cur);
+		if (d.state !== "alarm" || regs.length === 0 || cur < %d || starts.length === 0) return false;
+		const c = document.getElementById("view"), ctx = c.getContext("2d");
+		const px = (x, y) => Array.from(ctx.getImageData(Math.round(x), Math.round(y), 1, 1).data);
+		// The outlined region that meets the planted square, if any.
+		const r = regs.find((b) => b[2] >= %d && b[0] <= %d && b[3] >= %d && b[1] <= %d);
+		if (!r) return false;
+		const [x0, y0] = sparsewatch.toCanvas(r[0], r[1]);
+		const [x1, y1] = sparsewatch.toCanvas(r[2] + 1, r[3] + 1);
+		const ym = (y0 + y1) / 2, xm = (x0 + x1) / 2;
+		// The outline is 2 device px wide just outside the box; probe the middle of each side.
+		return {alarm: Math.max(...starts), box: r, left: px(x0 - 1.5, ym), right: px(x1 + 0.5, ym), top: px(xm, y0 - 1.5),
+			far: px(Math.min(x0, x1) - 40, ym + 40), all: [...sparsewatch.state.alarms.keys()]};
+	})()`, changeFrame, spotX0-regionTolerance, spotX0+spotSide-1+regionTolerance,
+		spotY0-regionTolerance, spotY0+spotSide-1+regionTolerance), 40*time.Second)
+	alarmFrame := int(probe["alarm"].(float64))
+	t.Logf("alarms starting at frames %v", probe["all"])
+	shot(t, tab, "4-alarm")
+	box := toInts(probe["box"])
+	t.Logf("region %v (meets the planted square) in the alarm of frame %d", box, alarmFrame)
+	for _, side := range []string{"left", "right", "top"} {
+		if c := toInts(probe[side]); !near(c, regionRGB, 40) {
+			t.Errorf("canvas pixel on the %s side of the region outline is %v, want about %v", side, c, regionRGB)
+		}
+	}
+	if c := toInts(probe["far"]); near(c, regionRGB, 40) {
+		t.Errorf("canvas pixel away from the region is %v, the outline colour: the probe cannot tell", c)
+	}
+	// Chart: the alarm episode is shaded; a watched frame before it is not.
+	shade := eval[map[string]any](t, tab, fmt.Sprintf(`(() => {
+		const c = document.getElementById("chart"), ctx = c.getContext("2d");
+		const col = (f) => { const x = Math.round(sparsewatch.chartX(f)) + 1; const out = [];
+			for (let y = 15; y < c.height - 30; y += 7) out.push(Array.from(ctx.getImageData(x, y, 1, 1).data));
+			return out; };
+		return {alarm: col(%d), before: col(%d)}; })()`, alarmFrame, testRef+5))
+	if n := countNear(shade["alarm"], episodeRGB, 14); n < 3 {
+		t.Errorf("chart column at the alarm frame has %d shaded pixels, want several", n)
+	}
+	if n := countNear(shade["before"], episodeRGB, 14); n != 0 {
+		t.Errorf("chart column before the alarm has %d alarm-shaded pixels, want none", n)
+	}
+	// Clicking the chart at the alarm picks that frame and its alarm.
+	xy := eval[[]float64](t, tab, fmt.Sprintf(`(() => { const r = document.getElementById("chart").getBoundingClientRect();
+		return [r.left + sparsewatch.chartX(%d) / devicePixelRatio + 1, r.top + r.height / 2]; })()`, alarmFrame))
+	if err := chromedp.Do(tab, chromedp.MouseClickXY(xy[0], xy[1])); err != nil {
+		t.Fatal(err)
+	}
+	picked := poll[string](t, tab, "the picked alarm", `document.body.dataset.pickedAlarm || ""`, 3*time.Second)
+	if picked != fmt.Sprint(alarmFrame) {
+		t.Errorf("clicking the chart at frame %d picked the alarm of frame %s", alarmFrame, picked)
+	}
+	// The viewer sees the same alarm.
+	vAlarm := poll[int](t, viewer, "the alarm in the viewer tab", `sparsewatch.state.alarms.size > 0 && Math.min(...sparsewatch.state.alarms.keys()) + 1`, 10*time.Second) - 1
+	if vAlarm != alarmFrame {
+		t.Errorf("viewer lists the first alarm at frame %d, owner at %d", vAlarm, alarmFrame)
+	}
+	shot(t, viewer, "5-share-alarm")
+	poll[bool](t, tab, "the end of the review", `document.body.dataset.state === "finished"`, 30*time.Second)
+	shot(t, tab, "6-finished")
+}
+
+// Colours the page draws with (style.css / app.js COLORS).
+var (
+	regionRGB  = []int{255, 77, 46}
+	episodeRGB = []int{255, 223, 216} // rgba(255,77,46,0.22) over white
+)
+
+func toInts(v any) []int {
+	a, _ := v.([]any)
+	out := make([]int, len(a))
+	for i, x := range a {
+		f, _ := x.(float64)
+		out[i] = int(f)
+	}
+	return out
+}
+
+func near(c, want []int, tol int) bool {
+	if len(c) < 3 {
+		return false
+	}
+	for i := 0; i < 3; i++ {
+		if d := c[i] - want[i]; d < -tol || d > tol {
+			return false
+		}
+	}
+	return true
+}
+
+func countNear(v any, want []int, tol int) int {
+	a, _ := v.([]any)
+	n := 0
+	for _, c := range a {
+		if near(toInts(c), want, tol) {
+			n++
+		}
+	}
+	return n
 }

@@ -220,6 +220,8 @@
     p.policy = f.querySelector("[name=policy]").value;
     const rf = parseInt(f.querySelector("[name=reference_frames]").value, 10);
     if (rf > 0) p.reference_frames = rf;
+    const tile = parseInt(f.querySelector("[name=tile]").value, 10);
+    if (tile > 0) p.tile = tile;
     const a = parseFloat(f.querySelector("[name=arl0]").value);
     if (a > 0) p.arl0 = a;
     const pace = parseFloat(f.querySelector("[name=pace]").value);
@@ -231,7 +233,9 @@
   function uploadName() {
     const rel = picked[0] && picked[0].webkitRelativePath;
     if (rel && rel.includes("/")) return rel.split("/")[0];
-    return picked.length === 1 ? picked[0].name : picked.length + " files";
+    if (picked.length === 1) return picked[0].name;
+    const names = picked.map((f) => f.name).sort((p, q) => p.localeCompare(q, "en", { numeric: true }));
+    return names[0] + " … " + names[names.length - 1] + " (" + picked.length + " files)";
   }
 
   function upload() {
@@ -343,6 +347,7 @@
       "You opened the owner link: you can change the settings." :
       "Watch-only link: you see everything live, but cannot change anything.";
     $("settings-fields").disabled = role !== "owner";
+    $("settings-who").textContent = role === "owner" ? "" : "(only the owner link can change them)";
     for (const b of ["compare", "share", "calibrate", "apply"]) $(b).disabled = role !== "owner";
     const q = "?token=" + encodeURIComponent(token);
     const base = "/api/sessions/" + encodeURIComponent(id);
@@ -619,6 +624,8 @@
     }
     if (p.policy) bt += ", " + p.policy;
     $("f-budget").textContent = bt;
+    const fps = S.status.frames_per_second;
+    $("f-speed").textContent = fps > 0 ? fmt(fps, 1) + " frames per second" : "–";
   }
 
   // ---------- frame view ----------
@@ -648,7 +655,8 @@
       const [t0, r0, g0, b0] = stops[k], [t1, r1, g1, b1] = stops[k + 1];
       const u = (t - t0) / (t1 - t0);
       const r = r0 + (r1 - r0) * u, g = g0 + (g1 - g0) * u, b = b0 + (b1 - b0) * u;
-      const a = i === 0 ? 0 : Math.min(235, 70 + t * 200);
+      const ramp = Math.min(1, Math.max(0, (t - 0.04) / 0.56)); // smoothstep: near-zero stays see-through
+      const a = Math.round(230 * ramp * ramp * (3 - 2 * ramp));
       lut[i] = ((a & 255) << 24) | ((b & 255) << 16) | ((g & 255) << 8) | (r & 255); // RGBA little-endian
     }
     return lut;
@@ -739,6 +747,9 @@
     const ctx = c.getContext("2d");
     drawScene(ctx, w, h, view.zoom, view.px, view.py, view.dpr);
     body.dataset.drawn = String(S.cur ? S.cur.frame : -1);
+    // What this drawing outlined, so a test can find the outline's pixels.
+    body.dataset.drawnRegions = JSON.stringify(S.cur && $("show-regions").checked ?
+      S.cur.regions.map((r) => [r.x0, r.y0, r.x1, r.y1]) : []);
   }
 
   // drawScene draws preview, read mask, heat and regions with the given
@@ -799,14 +810,18 @@
       if (old && (!live || old.frame !== (alarmAt(S.cur.frame) || {}).frame)) {
         for (const r of old.regions || []) {
           const b = r.bbox || [0, 0, 0, 0];
-          drawBox(ctx, { x0: b[0], y0: b[1], x1: b[2], y1: b[3], peak: r.peak }, zoom, px, py, lw, pa ? COLORS.picked : COLORS.region, true);
+          drawBox(ctx, { x0: b[0], y0: b[1], x1: b[2], y1: b[3], peak: r.peak }, zoom, px, py, lw, pa ? COLORS.picked : COLORS.region, true, false);
         }
       }
-      if (S.cur) for (const r of S.cur.regions) drawBox(ctx, r, zoom, px, py, lw, COLORS.region, false);
+      if (S.cur) {
+        // Label only the strongest few, so many small regions stay readable.
+        const top = S.cur.regions.slice().sort((p, q) => q.peak - p.peak).slice(0, 3);
+        for (const r of S.cur.regions) drawBox(ctx, r, zoom, px, py, lw, COLORS.region, false, top.includes(r));
+      }
     }
   }
 
-  function drawBox(ctx, r, zoom, px, py, lw, color, dashed) {
+  function drawBox(ctx, r, zoom, px, py, lw, color, dashed, label) {
     let x0 = (r.x0 - px) * zoom, y0 = (r.y0 - py) * zoom;
     let x1 = (r.x1 + 1 - px) * zoom, y1 = (r.y1 + 1 - py) * zoom;
     const min = 8 * lw; // keep a one-pixel region visible when zoomed out
@@ -818,10 +833,15 @@
     ctx.strokeStyle = color;
     ctx.setLineDash(dashed ? [5 * lw, 4 * lw] : []);
     ctx.strokeRect(x0 - pad, y0 - pad, x1 - x0 + 2 * pad, y1 - y0 + 2 * pad);
-    if (r.peak !== undefined) {
+    if (label && r.peak !== undefined) {
       ctx.font = (11 * lw) + "px DejaVu Sans, sans-serif";
+      const t = "peak " + fmt(r.peak, 1);
+      const tw = ctx.measureText(t).width;
+      const ty = y0 - 5 * lw > 14 * lw ? y0 - 5 * lw : y1 + 15 * lw; // above the box, or below at the top edge
+      ctx.fillStyle = "rgba(20, 22, 25, 0.75)";
+      ctx.fillRect(x0 - 2 * lw, ty - 11 * lw, tw + 4 * lw, 14 * lw);
       ctx.fillStyle = color;
-      ctx.fillText("peak " + fmt(r.peak, 1), x0, Math.max(11 * lw, y0 - 4 * lw));
+      ctx.fillText(t, x0, ty);
     }
     ctx.restore();
   }
@@ -985,6 +1005,10 @@
     }
     flush();
     ctx.stroke();
+    if (gmax > chart.ymax) {
+      ctx.fillStyle = COLORS.g; ctx.textAlign = "right"; ctx.textBaseline = "top";
+      ctx.fillText("statistic goes off the top, up to " + fmt(gmax, 0), chart.x1 - 4 * dpr, chart.y0 + 2 * dpr);
+    }
     // Picked frame.
     if (S.picked >= 0) {
       const x = Math.round(chartX(S.picked)) + 0.5;
@@ -1143,7 +1167,7 @@
         // The server sets the limit when a run starts: changing only the
         // target starts a new run, which calibrates first.
         if (!(a > 0)) throw new Error("give a positive false-alarm target");
-        const st = await api("PATCH", "/api/sessions/" + encodeURIComponent(S.id) + "/params", { arl0: a }, S.token);
+        const st = await api("POST", "/api/sessions/" + encodeURIComponent(S.id) + "/calibrate", { arl0: a }, S.token);
         resetHistory();
         if (st && typeof st === "object") onStatus(st);
         $("settings-msg").textContent = "New target sent; the limit is being set, then the review starts again.";
