@@ -123,7 +123,7 @@ func TestCUSUMReferenceARL(t *testing.T) {
 	table0 := []float64{168, 465}
 	table1 := []float64{8.38, 10.4}
 
-	paths0, paths1 := 10000, 4000
+	paths0, paths1 := 6000, 3000
 	if testing.Short() {
 		paths0, paths1 = 3000, 2000
 	}
