@@ -267,3 +267,29 @@ func TestBadFiles(t *testing.T) {
 		})
 	}
 }
+
+func TestWriteUint16RoundTrip(t *testing.T) {
+	a := []float32{0, 1, 65535, 32768, 40000.4, 7}
+	b := []float32{9, 8, 7, 6, 5, 4}
+	var buf bytes.Buffer
+	if err := WriteUint16(&buf, 3, 2, a, b); err != nil {
+		t.Fatal(err)
+	}
+	if buf.Len()%BlockSize != 0 {
+		t.Fatalf("%d bytes is not whole blocks", buf.Len())
+	}
+	f := mustOpen(t, buf.Bytes())
+	if f.Planes != 2 || f.Width != 3 || f.Height != 2 {
+		t.Fatalf("%dx%dx%d", f.Width, f.Height, f.Planes)
+	}
+	got := readAll(t, f, 0)
+	want := []float32{0, 1, 65535, 32768, 40000, 7}
+	for i := range want {
+		if got[i] != want[i] {
+			t.Errorf("pixel %d = %v, want %v", i, got[i], want[i])
+		}
+	}
+	if got := readAll(t, f, 1); got[5] != 4 {
+		t.Errorf("plane 1 last pixel %v", got[5])
+	}
+}
