@@ -431,4 +431,3 @@ func (p *scanProgress) finish() {
 		fmt.Fprint(p.w, "\r\x1b[K")
 	}
 }
-
