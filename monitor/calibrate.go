@@ -36,6 +36,13 @@ type CalibrationSpec struct {
 	Horizon int
 	WorkCap float64 // default 4e9 stream reads for the counted frames
 
+	// Paths are windows of Chains independent simulations (default 4), each
+	// run through the burn-in once; after a window that ended in an alarm,
+	// Gap uncounted frames (default max(50, burn-in/4)) pass before the next
+	// window. The chain count, not the number of cores, fixes the result.
+	Chains int
+	Gap    int
+
 	// Bootstrap, when not nil, holds standardised in-control frames, each of
 	// length m (NaN = missing); every simulated frame is one of them drawn
 	// with replacement. Nil simulates independent standard normal values.
@@ -76,7 +83,7 @@ type Calibration struct {
 // run lengths of CUSUM-type schemes are close to geometric for large h
 // with log ARL0 close to linear in h (Siegmund 1985, Sequential Analysis,
 // ch. 2; the geometric tail of CUSUM run lengths: Brook & Evans 1972,
-// Biometrika 59). Work runs on every core, one engine per path, each path
+// Biometrika 59). Work runs on every core, one engine per chain, each chain
 // with its own seed, so results do not depend on scheduling.
 func Calibrate(ctx context.Context, spec CalibrationSpec) (Calibration, error) {
 	var cal Calibration
@@ -103,10 +110,12 @@ func Calibrate(ctx context.Context, spec CalibrationSpec) (Calibration, error) {
 	}
 	prog := newProgress(spec.Progress, nPaths+nVerify)
 
-	// Pilot paths run to the horizon; they locate the limit roughly and set
-	// the level at which the main paths may stop early.
+	// Pilot windows run to the horizon; they locate the limit roughly and
+	// set the level at which the later windows may stop early. The same
+	// chains then go on with the remaining windows.
+	chains := make([]chain, run.chainCount(nPaths))
 	paths := make([]pathRecord, nPaths)
-	if err := run.many(ctx, cfg, paths[:pilot], 0, math.Inf(1), spec.Seed, 1, prog); err != nil {
+	if err := run.many(ctx, cfg, chains, paths[:pilot], math.Inf(1), spec.Seed, 1, prog); err != nil {
 		return cal, err
 	}
 	stop := math.Inf(1)
@@ -117,9 +126,10 @@ func Calibrate(ctx context.Context, spec CalibrationSpec) (Calibration, error) {
 			stop = math.Max(h, est.limit*1.05)
 		}
 	}
-	if err := run.many(ctx, cfg, paths[pilot:], pilot, stop, spec.Seed, 1, prog); err != nil {
+	if err := run.many(ctx, cfg, chains, paths[pilot:], stop, spec.Seed, 1, prog); err != nil {
 		return cal, err
 	}
+	chains = nil // let the engines go
 	est, err := estimateLimit(paths, target, run.horizon)
 	if err != nil {
 		return cal, err
@@ -127,9 +137,9 @@ func Calibrate(ctx context.Context, spec CalibrationSpec) (Calibration, error) {
 	cal.Limit, cal.ARL0, cal.ARL0SE = est.limit, est.arl, est.se
 	cal.Extrapolated, cal.Note, cal.Paths = est.extrapolated, est.note, nPaths
 
-	// Fresh paths at the chosen limit.
+	// Fresh chains (new seeds, own burn-in) at the chosen limit.
 	ver := make([]pathRecord, nVerify)
-	if err := run.many(ctx, cfg, ver, 0, cal.Limit, spec.Seed, 2, prog); err != nil {
+	if err := run.many(ctx, cfg, make([]chain, run.chainCount(nVerify)), ver, cal.Limit, spec.Seed, 2, prog); err != nil {
 		return cal, err
 	}
 	a, n := arlAt(ver, cal.Limit)
@@ -148,6 +158,8 @@ type VerifySpec struct {
 	Paths     int // default 200
 	Burnin    int // as in CalibrationSpec
 	Horizon   int // frames counted per path at most; 0 = until the alarm
+	Chains    int // as in CalibrationSpec
+	Gap       int
 	Bootstrap [][]float32
 	Seed      uint64
 	Progress  func(done, total int)
@@ -167,7 +179,7 @@ func Verify(ctx context.Context, spec VerifySpec) (Verification, error) {
 		return Verification{}, fmt.Errorf("monitor: verify limit %v must be a finite number > 0", spec.Limit)
 	}
 	cs := CalibrationSpec{Config: spec.Config, TargetARL0: 2, Burnin: spec.Burnin, Horizon: spec.Horizon,
-		Bootstrap: spec.Bootstrap, Seed: spec.Seed}
+		Chains: spec.Chains, Gap: spec.Gap, Bootstrap: spec.Bootstrap, Seed: spec.Seed}
 	if cs.Horizon == 0 {
 		cs.Horizon = 1 << 30
 	}
@@ -180,7 +192,7 @@ func Verify(ctx context.Context, spec VerifySpec) (Verification, error) {
 		n = 200
 	}
 	ver := make([]pathRecord, n)
-	if err := run.many(ctx, cfg, ver, 0, spec.Limit, spec.Seed, 3, newProgress(spec.Progress, n)); err != nil {
+	if err := run.many(ctx, cfg, make([]chain, run.chainCount(n)), ver, spec.Limit, spec.Seed, 3, newProgress(spec.Progress, n)); err != nil {
 		return Verification{}, err
 	}
 	a, k := arlAt(ver, spec.Limit)
@@ -212,7 +224,10 @@ func (s CalibrationSpec) prepare() (Config, *simRun, error) {
 	if s.Bootstrap != nil && len(s.Bootstrap) == 0 {
 		return cfg, nil, errors.New("monitor: bootstrap needs at least one frame")
 	}
-	run := &simRun{frames: s.Bootstrap}
+	run := &simRun{boot: s.Bootstrap, chains: s.Chains}
+	if run.chains <= 0 {
+		run.chains = 4
+	}
 	q := readsPerFrame(cfg)
 	switch {
 	case s.Burnin < 0:
@@ -221,6 +236,10 @@ func (s CalibrationSpec) prepare() (Config, *simRun, error) {
 		run.burnin = s.Burnin
 	default:
 		run.burnin = SteadyBurnin(cfg)
+	}
+	run.gap = s.Gap
+	if run.gap <= 0 {
+		run.gap = max(50, run.burnin/4)
 	}
 	run.horizon = s.Horizon
 	if run.horizon == 0 {
@@ -281,11 +300,13 @@ func SteadyBurnin(cfg Config) int {
 // simRun simulates in-control paths of one configuration.
 type simRun struct {
 	burnin, horizon int
-	frames          [][]float32 // bootstrap frames; nil = standard normal
+	gap             int         // uncounted frames after a window that reached the stop level
+	chains          int         // chains per stage
+	boot            [][]float32 // bootstrap frames; nil = standard normal
 }
 
 func (r *simRun) model() string {
-	if r.frames != nil {
+	if r.boot != nil {
 		return "bootstrap"
 	}
 	return "normal"
@@ -323,15 +344,37 @@ func mix64(z uint64) uint64 {
 	return z ^ (z >> 31)
 }
 
-// many fills out[k] with path first+k of the given stage, on every core.
-// Each path stops when G reaches stop or after the horizon.
-func (r *simRun) many(ctx context.Context, cfg Config, out []pathRecord, first int, stop float64, seed uint64, stage int, prog *progress) error {
+// chain is one in-control simulation carried across windows: an engine
+// run through its burn-in once, then a sequence of counted windows, each a
+// path in the sense of pathRecord. After a window that ended with G at the
+// stop level, gap uncounted frames let the excursion die down before the
+// next window starts; a window cut by the horizon is followed at once (the
+// monitor was in its steady state throughout). Zero-state runs reset the
+// engine before every window instead.
+type chain struct {
+	eng     *Engine
+	rng     *rand.Rand
+	buf     pathBuffers
+	needGap bool
+}
+
+// chainCount is the number of chains per stage: fixed, so that results
+// depend on the seed only, never on the number of cores.
+func (r *simRun) chainCount(windows int) int { return max(1, min(r.chains, windows)) }
+
+// many fills out with windows of the given chains (chain c makes windows
+// c, c+C, c+2C, ...), running the chains in parallel, one goroutine per
+// chain at a time. chains[c].eng == nil starts chain c from a fresh engine
+// seeded from (seed, stage, c). Each window stops when G reaches stop or
+// after the horizon.
+func (r *simRun) many(ctx context.Context, cfg Config, chains []chain, out []pathRecord, stop float64, seed uint64, stage int, prog *progress) error {
 	if len(out) == 0 {
 		return nil
 	}
 	ctx, cancel := context.WithCancel(ctx)
 	defer cancel()
-	workers := min(runtime.GOMAXPROCS(0), len(out))
+	nc := len(chains)
+	workers := min(runtime.GOMAXPROCS(0), nc)
 	var next atomic.Int64
 	errs := make([]error, workers)
 	var wg sync.WaitGroup
@@ -339,19 +382,27 @@ func (r *simRun) many(ctx context.Context, cfg Config, out []pathRecord, first i
 		wg.Add(1)
 		go func() {
 			defer wg.Done()
-			var buf pathBuffers
 			for {
-				k := int(next.Add(1)) - 1
-				if k >= len(out) {
+				c := int(next.Add(1)) - 1
+				if c >= nc {
 					return
 				}
-				s := pathSeed(seed, stage, first+k)
-				if err := r.path(ctx, cfg, &out[k], stop, s, &buf); err != nil {
-					errs[w] = err
-					cancel()
-					return
+				ch := &chains[c]
+				if ch.eng == nil {
+					if err := r.start(ctx, cfg, ch, pathSeed(seed, stage, c)); err != nil {
+						errs[w] = err
+						cancel()
+						return
+					}
 				}
-				prog.add(1)
+				for k := c; k < len(out); k += nc {
+					if err := r.window(ctx, ch, &out[k], stop); err != nil {
+						errs[w] = err
+						cancel()
+						return
+					}
+					prog.add(1)
+				}
 			}
 		}()
 	}
@@ -372,48 +423,69 @@ type pathBuffers struct {
 	missing []bool
 }
 
-// path runs one in-control path: burn-in, then counted frames until G >=
-// stop or the horizon.
-func (r *simRun) path(ctx context.Context, cfg Config, rec *pathRecord, stop float64, seed uint64, buf *pathBuffers) error {
+// start makes the chain's engine and runs its burn-in.
+func (r *simRun) start(ctx context.Context, cfg Config, ch *chain, seed uint64) error {
 	cfg.Seed = mix64(seed ^ 0x5851f42d4c957f2d)
 	eng, err := New(cfg)
 	if err != nil {
 		return err
 	}
-	rng := rand.New(rand.NewPCG(seed, 0xda3e39cb94b95bdb))
-	done := ctx.Done()
+	ch.eng = eng
+	ch.rng = rand.New(rand.NewPCG(seed, 0xda3e39cb94b95bdb))
+	_, err = r.frames(ctx, ch, r.burnin, nil, math.Inf(1))
+	return err
+}
+
+// window counts one path on the chain: frames until G >= stop or the
+// horizon, keeping the records of G.
+func (r *simRun) window(ctx context.Context, ch *chain, rec *pathRecord, stop float64) error {
+	switch {
+	case r.burnin == 0:
+		ch.eng.Reset()
+	case ch.needGap:
+		if _, err := r.frames(ctx, ch, r.gap, nil, math.Inf(1)); err != nil {
+			return err
+		}
+	}
 	rec.at, rec.g, rec.frames = rec.at[:0], rec.g[:0], 0
+	hit, err := r.frames(ctx, ch, r.horizon, rec, stop)
+	ch.needGap = hit
+	return err
+}
+
+// frames steps the chain up to n frames. With rec, it records the running
+// maximum of G and stops early, reporting true, once G reaches stop.
+func (r *simRun) frames(ctx context.Context, ch *chain, n int, rec *pathRecord, stop float64) (bool, error) {
+	done := ctx.Done()
 	best := math.Inf(-1)
-	total := r.burnin + r.horizon
-	for t := 0; t < total; t++ {
+	for t := 1; t <= n; t++ {
 		if t&7 == 0 {
 			select {
 			case <-done:
-				return ctx.Err()
+				return false, ctx.Err()
 			default:
 			}
 		}
-		idx := eng.Next()
-		z, missing := buf.fill(idx, rng, r.frames)
-		upd, err := eng.Step(z, missing)
+		idx := ch.eng.Next()
+		z, missing := ch.buf.fill(idx, ch.rng, r.boot)
+		upd, err := ch.eng.Step(z, missing)
 		if err != nil {
-			return err
+			return false, err
 		}
-		if t < r.burnin {
+		if rec == nil {
 			continue
 		}
-		n := t - r.burnin + 1
-		rec.frames = n
+		rec.frames = t
 		if upd.G > best {
 			best = upd.G
-			rec.at = append(rec.at, int32(n))
+			rec.at = append(rec.at, int32(t))
 			rec.g = append(rec.g, best)
 			if best >= stop {
-				return nil
+				return true, nil
 			}
 		}
 	}
-	return nil
+	return false, nil
 }
 
 // fill draws the values of the streams idx: independent standard normals

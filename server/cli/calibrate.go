@@ -27,6 +27,8 @@ func runCalibrate(ctx context.Context, env Env, args []string) error {
 	burnin := fs.Int("burnin", 0, "frames before counting run lengths (0 = steady-state default, -1 = zero state)")
 	horizon := fs.Int("horizon", 0, "frames counted per path at most (0 = automatic; beyond it the limit is extrapolated)")
 	work := fs.Float64("work", 0, "cap on stream reads spent per stage when choosing the horizon (0 = default 4e9)")
+	chains := fs.Int("chains", 0, "independent simulation chains per stage, each burnt in once (0 = 4)")
+	gap := fs.Int("gap", 0, "uncounted frames after an in-control alarm before the next counted window (0 = burn-in/4)")
 	zeroCheck := fs.Bool("zero-state-check", false, "also calibrate from zero state and measure that limit's steady-state ARL0")
 	seed := fs.Uint64("seed", 1, "random seed")
 	asJSON := fs.Bool("json", false, "print the result as JSON")
@@ -59,7 +61,7 @@ func runCalibrate(ctx context.Context, env Env, args []string) error {
 	cfg := monitor.Config{Width: *width, Height: *height, Budget: q, TopR: *topR, Shift: *shift, Policy: pol,
 		CompFraction: *comp, Compensation: *compAbs}
 	spec := monitor.CalibrationSpec{Config: cfg, TargetARL0: *arl0, Paths: *paths, Verify: *verify, Burnin: *burnin,
-		Horizon: *horizon, WorkCap: *work, Seed: *seed}
+		Horizon: *horizon, WorkCap: *work, Chains: *chains, Gap: *gap, Seed: *seed}
 	prog := newProgressLine(env.Stderr, "calibrate")
 	spec.Progress = prog.update
 	start := time.Now()
@@ -83,7 +85,7 @@ func runCalibrate(ctx context.Context, env Env, args []string) error {
 		}
 		vp := newProgressLine(env.Stderr, "verify zero-state limit in steady state")
 		v, err := monitor.Verify(ctx, monitor.VerifySpec{Config: cfg, Limit: zcal.Limit, Paths: spec.Paths,
-			Burnin: 0, Horizon: 20 * int(*arl0), Seed: *seed ^ 0xabcdef, Progress: vp.update})
+			Burnin: 0, Horizon: 20 * int(*arl0), Chains: *chains, Gap: *gap, Seed: *seed ^ 0xabcdef, Progress: vp.update})
 		vp.finish()
 		if err != nil {
 			return err
