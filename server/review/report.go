@@ -24,6 +24,7 @@ type Report struct {
 	FirstWatched    int          `json:"first_watched_frame"` // index of the first frame after the reference frames (-1 if none)
 	FramesWatched   int          `json:"frames_watched"`
 	WatchPixelsRead int64        `json:"watch_pixels_read"` // pixels read after the reference frames
+	WatchBytesRead  int64        `json:"watch_bytes_read"`  // bytes read after the reference frames
 	Model           string       `json:"model"`
 	Calibration     *Calibration `json:"calibration,omitempty"`
 	Errors          []FileError  `json:"errors"`

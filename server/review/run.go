@@ -424,7 +424,7 @@ func (rv *reviewer) report(r *run, took time.Duration) Report {
 		Frames: rv.refFrames + r.frames, PixelsRead: rv.refPixels + r.pixels, Alarms: r.alarms, BytesRead: rv.refBytes + r.bytes,
 		Policy: r.p.Policy, Tile: rv.tiler.K, GridWidth: rv.tiler.GW, GridHeight: rv.tiler.GH, TopR: r.cfg.TopR, Shift: r.cfg.Shift,
 		Compensation: r.eng.Compensation(), ReferenceFrames: rv.refFrames, FirstWatched: rv.firstW, FramesWatched: r.frames,
-		WatchPixelsRead: r.pixels, Model: rv.p.Model, Calibration: r.cal, Errors: rv.errs, Warnings: rv.warns, Seconds: took.Seconds()}
+		WatchPixelsRead: r.pixels, WatchBytesRead: r.bytes, Model: rv.p.Model, Calibration: r.cal, Errors: rv.errs, Warnings: rv.warns, Seconds: took.Seconds()}
 	if rep.Alarms == nil {
 		rep.Alarms = []Alarm{}
 	}
