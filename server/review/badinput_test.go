@@ -4,9 +4,9 @@ import (
 	"bytes"
 	"context"
 	"fmt"
+	"hash/crc32"
 	"image"
 	"image/png"
-	"hash/crc32"
 	"math/rand/v2"
 	"os"
 	"path/filepath"
@@ -130,7 +130,9 @@ func hugeHeader(w, h uint32) []byte {
 	img := image.NewGray(image.Rect(0, 0, 1, 1))
 	png.Encode(&b, img)
 	out := b.Bytes()[:33]
-	be := func(o int, v uint32) { out[o], out[o+1], out[o+2], out[o+3] = byte(v>>24), byte(v>>16), byte(v>>8), byte(v) }
+	be := func(o int, v uint32) {
+		out[o], out[o+1], out[o+2], out[o+3] = byte(v>>24), byte(v>>16), byte(v>>8), byte(v)
+	}
 	be(16, w)
 	be(20, h)
 	crc := crc32.ChecksumIEEE(out[12:29])
