@@ -42,6 +42,9 @@ func (s *Server) routes() *echo.Echo {
 	// calibration progress reaches the viewers as "calibration" messages.
 	e.POST("/api/sessions/:id/calibrate", s.handleParams)
 	e.GET("/api/share/:token", s.handleShareLookup)
+	e.GET("/api/demos", func(c echo.Context) error {
+		return c.JSON(http.StatusOK, map[string]any{"demos": demoList()})
+	})
 	e.GET("/ws/sessions/:id", s.handleWS)
 
 	page := func(c echo.Context) error { return s.servePage(c) }
@@ -209,7 +212,13 @@ func (s *Server) handleCreate(c echo.Context) error {
 	}
 	switch req.Source.Kind {
 	case "demo":
-		sess, err := s.CreateDemo(req.Source.Scenario, req.Name, p)
+		var set map[string]json.RawMessage
+		json.Unmarshal(req.Params, &set)
+		keys := map[string]bool{}
+		for k := range set {
+			keys[k] = true
+		}
+		sess, err := s.CreateDemo(req.Source.Scenario, req.Name, p, keys)
 		if err != nil {
 			return err
 		}

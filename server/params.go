@@ -24,6 +24,10 @@ type Params struct {
 	ReferenceFrames int     `json:"reference_frames"`
 	Model           string  `json:"model"`
 	Seed            uint64  `json:"seed"`
+	// Calibration and Paths pass through to the review: the in-control
+	// model the limit is calibrated on, and the number of simulated paths.
+	Calibration string `json:"calibration,omitempty"`
+	Paths       int    `json:"paths,omitempty"`
 	// Pace is the review speed in frames per second so a person can watch
 	// an offline review; 0 reviews as fast as possible.
 	Pace float64 `json:"pace"`
@@ -37,7 +41,7 @@ func DefaultParams() Params {
 	return Params{
 		Budget: "3%", Policy: string(monitor.Adaptive), TopR: 10, Shift: 1,
 		Compensation: 0.25, Tile: 1, ARL0: 10000, ReferenceFrames: 50,
-		Model: "robust", Pace: DefaultPace,
+		Model: "robust", Calibration: "estimated", Pace: DefaultPace,
 	}
 }
 
@@ -105,31 +109,24 @@ func (b Budget) check() error {
 	return nil
 }
 
-// Validate names the first bad field.
-func (p Params) Validate() error {
+// validateParams names the first bad field: the review's own checks plus
+// the server's (pace, sizes a shared server should refuse).
+func validateParams(p Params) error {
 	if err := p.Budget.check(); err != nil {
-		return err
+		return errorf(KindInvalid, "params: %v", err)
 	}
-	if _, err := monitor.ParsePolicy(p.Policy); err != nil || p.Policy == string(monitor.Oracle) {
-		return fmt.Errorf("policy %q unknown (choose adaptive, thompson, spatial, random, stride, full)", p.Policy)
+	if err := reviewParams(p).Validate(); err != nil {
+		return errorf(KindInvalid, "params: %v", err)
 	}
 	switch {
-	case p.TopR < 1:
-		return fmt.Errorf("top_r %d must be at least 1", p.TopR)
-	case !(p.Shift > 0) || p.Shift > 1e6:
-		return fmt.Errorf("shift %v must be a number > 0", p.Shift)
-	case !(p.Compensation >= 0) || p.Compensation >= 1:
-		return fmt.Errorf("compensation %v must be a fraction of c_max in [0,1)", p.Compensation)
-	case p.Tile < 1 || p.Tile > 256:
-		return fmt.Errorf("tile %d must be between 1 and 256", p.Tile)
-	case !(p.ARL0 >= 2) || p.ARL0 > 1e12:
-		return fmt.Errorf("arl0 %v must be a number of frames >= 2", p.ARL0)
-	case p.ReferenceFrames < 2 || p.ReferenceFrames > 100000:
-		return fmt.Errorf("reference_frames %d must be between 2 and 100000", p.ReferenceFrames)
-	case p.Model != "robust" && p.Model != "normal-score":
-		return fmt.Errorf("model %q unknown (choose robust or normal-score)", p.Model)
+	case p.ReferenceFrames > 100000:
+		return errorf(KindInvalid, "params: reference_frames %d must be at most 100000", p.ReferenceFrames)
+	case p.ARL0 > 1e12:
+		return errorf(KindInvalid, "params: arl0 %v must be at most 1e12 frames", p.ARL0)
+	case p.Paths > 100000:
+		return errorf(KindInvalid, "params: paths %d must be at most 100000", p.Paths)
 	case !(p.Pace >= 0) || p.Pace > 10000:
-		return fmt.Errorf("pace %v must be frames per second in [0, 10000] (0 = as fast as possible)", p.Pace)
+		return errorf(KindInvalid, "params: pace %v must be frames per second in [0, 10000] (0 = as fast as possible)", p.Pace)
 	}
 	return nil
 }
@@ -145,8 +142,8 @@ func decodeParams(base Params, data []byte) (Params, error) {
 	if err := dec.Decode(&p); err != nil {
 		return base, errorf(KindInvalid, "params: %v", err)
 	}
-	if err := p.Validate(); err != nil {
-		return base, errorf(KindInvalid, "params: %v", err)
+	if err := validateParams(p); err != nil {
+		return base, err
 	}
 	return p, nil
 }

@@ -11,6 +11,8 @@ import (
 	"strconv"
 	"sync"
 	"time"
+
+	"sparsewatch/server/review"
 )
 
 // Session states, as shown in status JSON.
@@ -89,21 +91,25 @@ type Session struct {
 	hub *hub
 	log *slog.Logger
 
-	mu        sync.Mutex // guards the fields below
-	meta      meta
-	st        Status
-	histFrame []int32
-	histG     []float32
-	histStep  int // thinning: keep one point in histStep
-	alarms    []reportAlarm
-	report    *Report
-	logged    map[string]bool // alarm events already in alarms.jsonl ("start:F", "end:F")
-	cancel    context.CancelFunc
-	done      chan struct{}
+	mu            sync.Mutex // guards the fields below
+	meta          meta
+	st            Status
+	histFrame     []int32
+	histG         []float32
+	histStep      int // thinning: keep one point in histStep
+	alarms        []reportAlarm
+	report        *Report
+	logged        map[string]bool // alarm events already in alarms.jsonl ("start:F", "end:F")
+	lastRefStatus time.Time
+	cancel        context.CancelFunc
+	done          chan struct{}
 
 	// Owned by the review goroutine.
 	run         *runState
-	resumeAfter int // frames <= resumeAfter are already in stats.csv: replay them silently
+	resumeAfter int   // frames <= resumeAfter are already in stats.csv: replay them silently
+	hookErr     error // first persistence error inside a review hook
+
+	previews *previewer
 }
 
 // runState is the review goroutine's private state for one run.
@@ -113,16 +119,15 @@ type runState struct {
 	enc         *maskEncoder
 	buf         []byte
 	lastPreview time.Time
-	lastHeat    time.Time
 	paceStart   time.Time
 	paceFrames  int
-	local       []float32
 	watchStart  time.Time // first watched frame of this process
 	watched     int       // watched frames since watchStart
 }
 
 func newSession(srv *Server, dir string, m meta) *Session {
 	s := &Session{srv: srv, dir: dir, hub: newHub(), meta: m, logged: map[string]bool{}}
+	s.previews = newPreviewer(s)
 	s.log = srv.log.With("session", m.ID)
 	s.resetStatus()
 	return s
@@ -175,11 +180,17 @@ func (s *Session) Report() Report {
 		r.Alarms = append([]reportAlarm{}, s.report.Alarms...)
 		return r
 	}
-	return Report{
+	// Still running: what is known so far, in the same schema.
+	r := Report{
 		Width: s.st.Width, Height: s.st.Height, Streams: s.st.GridW * s.st.GridH,
-		Budget: s.st.Budget, ControlLimit: s.st.Limit, Frames: s.st.Frame + 1,
-		Alarms: append([]reportAlarm{}, s.alarms...),
+		Budget: s.st.Budget, ControlLimit: s.st.Limit, Frames: s.st.FramesSeen,
+		Alarms: append([]reportAlarm{}, s.alarms...), Policy: s.meta.Params.Policy,
+		Tile: s.st.Tile, GridWidth: s.st.GridW, GridHeight: s.st.GridH, Errors: []review.FileError{},
 	}
+	for _, e := range s.st.Errors {
+		r.Errors = append(r.Errors, review.FileError{Frame: e.Frame, File: e.File, Reason: e.Message})
+	}
+	return r
 }
 
 // Alarms returns a copy of the alarms so far.
@@ -220,6 +231,9 @@ func (s *Session) runReview(ctx context.Context) {
 	if err == nil {
 		var rep *Report
 		rep, err = s.srv.review(ctx, s)
+		if err == nil && s.hookErr != nil {
+			err = s.hookErr
+		}
 		if err == nil && rep != nil {
 			err = s.finish(*rep)
 		}
@@ -271,6 +285,7 @@ func (s *Session) openRun() error {
 		return err
 	}
 	s.run = run
+	s.hookErr = nil
 	return nil
 }
 
@@ -444,73 +459,72 @@ func (s *Session) publishStatusLocked() {
 	}
 }
 
-// frameUpdate is one reviewed frame as the loop reports it. Slices may be
-// the engine's: they are used before onFrame returns.
+// frameUpdate is one watched frame as the review reports it. Slices may
+// be the engine's: they are used before onFrame returns.
 type frameUpdate struct {
-	Frame    int
-	G, Limit float64
-	Learning bool
-	Alarm    bool
-	Read     []int32 // streams read (stream-grid indices)
-	Regions  []box   // current regions, source pixels
-	Image    *gridImage
-	Local    func(dst []float32) []float32 // the engine's local statistics, for heat; may be nil
+	Frame      int
+	Name       string // file the frame came from (for previews)
+	G, Limit   float64
+	Alarm      bool
+	Read       []int32 // streams read (stream-grid indices)
+	Regions    []box   // current regions, source pixels
+	PixelsRead int64
 }
 
 // onFrame records a frame: status, chart, stats.csv, the viewers' slots,
 // and the pace of an offline review. It returns ctx's error when stopped.
 func (s *Session) onFrame(ctx context.Context, fu frameUpdate) error {
 	replay := fu.Frame <= s.resumeAfter
-	state := StateWatching
-	wire := byte(wireWatching)
-	switch {
-	case fu.Learning:
-		state, wire = StateLearning, wireLearning
-	case fu.Alarm:
+	state, wire := StateWatching, byte(wireWatching)
+	if fu.Alarm {
 		state, wire = StateAlarm, wireAlarm
 	}
+	run := s.run
 	s.mu.Lock()
 	changed := s.st.State != state
 	s.st.State, s.st.Frame, s.st.G, s.st.Limit = state, fu.Frame, fu.G, fu.Limit
 	s.st.FramesSeen++
-	if !fu.Learning {
-		s.addHistoryLocked(fu.Frame, fu.G)
-		if s.run.watchStart.IsZero() {
-			s.run.watchStart = time.Now()
-		} else {
-			s.run.watched++
-			s.st.FramesPerSecond = float64(s.run.watched) / time.Since(s.run.watchStart).Seconds()
-		}
+	s.addHistoryLocked(fu.Frame, fu.G)
+	if run.watchStart.IsZero() {
+		run.watchStart = time.Now()
+	} else {
+		run.watched++
+		s.st.FramesPerSecond = float64(run.watched) / time.Since(run.watchStart).Seconds()
 	}
 	if changed {
 		s.publishStatusLocked()
 	}
 	s.mu.Unlock()
-	run := s.run
-	if !replay && !fu.Learning {
-		if err := run.stats.append(statsRow{Frame: fu.Frame, G: fu.G, Limit: fu.Limit, PixelsRead: len(fu.Read)}); err != nil {
+	if !replay {
+		if err := run.stats.append(statsRow{Frame: fu.Frame, G: fu.G, Limit: fu.Limit, PixelsRead: int(fu.PixelsRead)}); err != nil {
 			return err
 		}
 	}
 	if s.hub.count.Load() > 0 && run.enc != nil {
 		run.buf = run.enc.encode(make([]byte, 0, frameHeaderLen+len(run.buf)), wire, fu.Frame, fu.G, fu.Limit, fu.Read, fu.Regions)
 		s.hub.publish(msgFrame, run.buf)
-		now := time.Now()
-		if fu.Image != nil && now.Sub(run.lastPreview) >= previewPeriod {
+		if now := time.Now(); now.Sub(run.lastPreview) >= previewPeriod {
 			run.lastPreview = now
-			s.hub.publish(msgPreview, encodePreview(fu.Frame, *fu.Image))
-		}
-		if fu.Local != nil && s.hub.heat.Load() > 0 && now.Sub(run.lastHeat) >= heatPeriod {
-			run.lastHeat = now
-			run.local = fu.Local(run.local)
-			st := s.Status()
-			s.hub.publish(msgHeat, encodeHeat(fu.Frame, run.local, st.GridW, st.GridH, fu.Limit))
+			s.previews.request(previewReq{frame: fu.Frame, name: fu.Name})
 		}
 	}
 	if replay {
 		return ctx.Err()
 	}
 	return s.pace(ctx)
+}
+
+// setReference reports reference learning progress (at most a few
+// status messages a second).
+func (s *Session) setReference(done, total int) {
+	s.mu.Lock()
+	defer s.mu.Unlock()
+	s.st.State = StateLearning
+	s.st.FramesSeen = done
+	if now := time.Now(); done == total || now.Sub(s.lastRefStatus) >= previewPeriod {
+		s.lastRefStatus = now
+		s.publishStatusLocked()
+	}
 }
 
 // pace sleeps so an offline review runs at Params.Pace frames per second.
