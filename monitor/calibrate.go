@@ -19,7 +19,7 @@ type CalibrationSpec struct {
 	TargetARL0 float64 // frames to a false alarm, > 1
 
 	// Paths is the number of simulated in-control paths (default 200); the
-	// verification uses as many fresh ones (Verify overrides).
+	// verification uses as many fresh ones (Verify overrides; < 0 skips it).
 	Paths  int
 	Verify int
 
@@ -101,8 +101,11 @@ func Calibrate(ctx context.Context, spec CalibrationSpec) (Calibration, error) {
 		nPaths = 200
 	}
 	nVerify := spec.Verify
-	if nVerify <= 0 {
+	switch {
+	case nVerify == 0:
 		nVerify = nPaths
+	case nVerify < 0:
+		nVerify = 0
 	}
 	pilot := max(16, nPaths/4)
 	if pilot > nPaths {
@@ -138,6 +141,11 @@ func Calibrate(ctx context.Context, spec CalibrationSpec) (Calibration, error) {
 	cal.Extrapolated, cal.Note, cal.Paths = est.extrapolated, est.note, nPaths
 
 	// Fresh chains (new seeds, own burn-in) at the chosen limit.
+	if nVerify == 0 {
+		cal.VerifiedARL0, cal.VerifiedSE = math.NaN(), math.NaN()
+		cal.Note += "; not verified on fresh paths (Verify < 0)"
+		return cal, nil
+	}
 	ver := make([]pathRecord, nVerify)
 	if err := run.many(ctx, cfg, make([]chain, run.chainCount(nVerify)), ver, cal.Limit, spec.Seed, 2, prog); err != nil {
 		return cal, err
@@ -209,7 +217,7 @@ func (s CalibrationSpec) prepare() (Config, *simRun, error) {
 	if !(s.TargetARL0 > 1) || math.IsInf(s.TargetARL0, 0) {
 		return cfg, nil, fmt.Errorf("monitor: target ARL0 %v must be a finite number > 1", s.TargetARL0)
 	}
-	if s.Paths < 0 || s.Verify < 0 {
+	if s.Paths < 0 {
 		return cfg, nil, errors.New("monitor: paths must be >= 0")
 	}
 	if s.Horizon < 0 {
@@ -459,12 +467,11 @@ func (r *simRun) frames(ctx context.Context, ch *chain, n int, rec *pathRecord, 
 	done := ctx.Done()
 	best := math.Inf(-1)
 	for t := 1; t <= n; t++ {
-		if t&7 == 0 {
-			select {
-			case <-done:
-				return false, ctx.Err()
-			default:
-			}
+		// Checked every frame: a large grid may take 100 ms a frame.
+		select {
+		case <-done:
+			return false, ctx.Err()
+		default:
 		}
 		idx := ch.eng.Next()
 		z, missing := ch.buf.fill(idx, ch.rng, r.boot)

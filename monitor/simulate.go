@@ -244,12 +244,11 @@ func (s Scenario) run(ctx context.Context, cfg Config, k int, changed []bool, zb
 	shift := float32(s.Shift)
 	done := ctx.Done()
 	for t := 0; t < s.Burnin+s.MaxDelay; t++ {
-		if t&7 == 0 {
-			select {
-			case <-done:
-				return 0, ctx.Err()
-			default:
-			}
+		// Checked every frame: a large grid may take 100 ms a frame.
+		select {
+		case <-done:
+			return 0, ctx.Err()
+		default:
 		}
 		idx := eng.Next()
 		if cap(*zbuf) < len(idx) {

@@ -23,7 +23,7 @@ func runCalibrate(ctx context.Context, env Env, args []string) error {
 	comp := fs.Float64("compensation", 0.25, "compensation as a fraction of its ceiling c_max")
 	compAbs := fs.Float64("comp-abs", 0, "absolute compensation (overrides --compensation)")
 	paths := fs.Int("paths", 200, "in-control paths (as many again verify the limit)")
-	verify := fs.Int("verify", 0, "fresh verification paths (0 = as many as --paths)")
+	verify := fs.Int("verify", 0, "fresh verification paths (0 = as many as --paths, -1 = skip)")
 	burnin := fs.Int("burnin", 0, "frames before counting run lengths (0 = steady-state default, -1 = zero state)")
 	horizon := fs.Int("horizon", 0, "frames counted per path at most (0 = automatic; beyond it the limit is extrapolated)")
 	work := fs.Float64("work", 0, "cap on stream reads spent per stage when choosing the horizon (0 = default 4e9)")
