@@ -4,6 +4,7 @@ import (
 	"bufio"
 	"context"
 	"encoding/json"
+	"fmt"
 	"net/http"
 	"os"
 	"os/exec"
@@ -11,6 +12,7 @@ import (
 	"reflect"
 	"strconv"
 	"strings"
+	"sync"
 	"syscall"
 	"testing"
 	"time"
@@ -18,6 +20,32 @@ import (
 
 // restartParams are small enough for a quick review and calibration.
 const restartParams = `{"budget":"10%","top_r":4,"arl0":300,"reference_frames":200,"seed":7,"paths":100`
+
+var (
+	binOnce sync.Once
+	binPath string
+	binErr  error
+)
+
+// mustBinary builds the sparsewatch command once per test run.
+func mustBinary(t *testing.T) string {
+	t.Helper()
+	binOnce.Do(func() {
+		dir, err := os.MkdirTemp("", "sparsewatch-bin-")
+		if err != nil {
+			binErr = err
+			return
+		}
+		binPath = filepath.Join(dir, "sparsewatch")
+		if out, err := exec.Command("go", "build", "-o", binPath, "sparsewatch").CombinedOutput(); err != nil {
+			binErr = fmt.Errorf("go build: %v\n%s", err, out)
+		}
+	})
+	if binErr != nil {
+		t.Fatal(binErr)
+	}
+	return binPath
+}
 
 // child is a `sparsewatch serve` process.
 type child struct {
@@ -94,11 +122,7 @@ func TestRestartResumesReview(t *testing.T) {
 	if testing.Short() {
 		t.Skip("builds the binary and runs two processes")
 	}
-	bin := filepath.Join(t.TempDir(), "sparsewatch")
-	build := exec.Command("go", "build", "-o", bin, "sparsewatch")
-	if out, err := build.CombinedOutput(); err != nil {
-		t.Fatalf("go build: %v\n%s", err, out)
-	}
+	bin := mustBinary(t)
 	frames := synthFrames(t, 32, 24, 400, [][2]int{{240, 270}, {330, 360}})
 
 	// Reference: the same frames and params, uninterrupted, in process.

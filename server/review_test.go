@@ -1,7 +1,12 @@
 package server
 
 import (
+	"encoding/json"
 	"net/http"
+	"os"
+	"os/exec"
+	"path/filepath"
+	"reflect"
 	"strings"
 	"testing"
 )
@@ -37,5 +42,68 @@ func TestUploadReview(t *testing.T) {
 		if code != http.StatusOK || !strings.Contains(string(b), "7") {
 			t.Fatalf("GET %s: %d %q", p, code, b)
 		}
+	}
+}
+
+// TestReportEqualsScan reviews the same frames (one of them corrupt) and
+// parameters through an upload and through `sparsewatch scan` and checks
+// that the two reports are the same, timing fields aside.
+func TestReportEqualsScan(t *testing.T) {
+	if testing.Short() {
+		t.Skip("builds the binary")
+	}
+	bin := mustBinary(t)
+	files := synthFrames(t, 32, 24, 300, [][2]int{{240, 280}})
+	files = append(files, upFile{"frame300.png", []byte("GIF89a broken")})
+	dir := t.TempDir()
+	for _, f := range files {
+		if err := os.WriteFile(filepath.Join(dir, f.name), f.data, 0o644); err != nil {
+			t.Fatal(err)
+		}
+	}
+	out := filepath.Join(t.TempDir(), "scan.json")
+	cmd := exec.Command(bin, "scan", dir, "--budget", "10%", "--top-r", "4", "--arl0", "300", "--warmup", "200",
+		"--seed", "7", "--paths", "100", "--out", out)
+	if msg, err := cmd.CombinedOutput(); err != nil {
+		t.Fatalf("scan: %v\n%s", err, msg)
+	}
+	var want Report
+	mustReadJSON(t, out, &want)
+
+	ts := mustServer(t, Options{})
+	cr := ts.mustUpload(t, files, `{"budget":"10%","top_r":4,"arl0":300,"reference_frames":200,"seed":7,"paths":100,"pace":0}`)
+	waitReport(t, ts.Server, cr.ID)
+	code, body := ts.do(t, "GET", "/api/sessions/"+cr.ID+"/report", cr.OwnerToken, "", nil)
+	if code != http.StatusOK {
+		t.Fatalf("report: %d %s", code, body)
+	}
+	var got Report
+	if err := json.Unmarshal(body, &got); err != nil {
+		t.Fatal(err)
+	}
+	for _, r := range []*Report{&got, &want} {
+		r.Seconds = 0
+		if r.Calibration != nil {
+			r.Calibration.Seconds = 0
+		}
+	}
+	if len(want.Alarms) == 0 || len(want.Errors) != 1 {
+		t.Fatalf("scan report has %d alarms and %d errors; the test wants the planted change found and the corrupt file listed", len(want.Alarms), len(want.Errors))
+	}
+	if !reflect.DeepEqual(got, want) {
+		g, _ := json.MarshalIndent(got, "", " ")
+		w, _ := json.MarshalIndent(want, "", " ")
+		t.Fatalf("session report differs from scan:\n got %s\nwant %s", g, w)
+	}
+}
+
+func mustReadJSON(t *testing.T, path string, v any) {
+	t.Helper()
+	data, err := os.ReadFile(path)
+	if err != nil {
+		t.Fatal(err)
+	}
+	if err := json.Unmarshal(data, v); err != nil {
+		t.Fatalf("%s: %v", path, err)
 	}
 }
