@@ -5,6 +5,7 @@ import (
 	"context"
 	"fmt"
 	"image"
+	"image/color"
 	"image/png"
 	"io"
 	"log/slog"
@@ -135,17 +136,17 @@ func eval[T any](t *testing.T, tab context.Context, expr string) T {
 // changeFrame and stays to the end.
 const (
 	testW, testH    = 32, 24 // small: calibration time grows with the stream count
-	testFrames      = 160
-	testRef         = 30
-	changeFrame     = 80
+	testFrames      = 200
+	testRef         = 60
+	changeFrame     = 120
 	spotX0, spotY0  = 20, 10
 	spotSide        = 4
-	spotRise        = 45 // grey levels, about 6 noise sigma
-	noiseSigma      = 7
-	regionTolerance = 3 // pixels a found box may miss the planted one by
+	noiseSigma      = 300  // counts of a 16-bit frame: rounding to integers is negligible
+	spotRise        = 2400 // 8 noise sigma per pixel, 16 per 2 x 2 tile
+	regionTolerance = 3    // pixels a found box may miss the planted one by
 )
 
-// writeFrames writes testFrames 8-bit grey PNGs: a gradient with Gaussian
+// writeFrames writes testFrames 16-bit grey PNGs: a gradient with Gaussian
 // noise, and from changeFrame on a bright square. Names count from 1 with
 // no zero padding, so the server's natural sort order is exercised too.
 func writeFrames(t *testing.T) []string {
@@ -154,14 +155,14 @@ func writeFrames(t *testing.T) []string {
 	rng := rand.New(rand.NewPCG(7, 11))
 	var paths []string
 	for f := 0; f < testFrames; f++ {
-		img := image.NewGray(image.Rect(0, 0, testW, testH))
+		img := image.NewGray16(image.Rect(0, 0, testW, testH))
 		for y := 0; y < testH; y++ {
 			for x := 0; x < testW; x++ {
-				v := 70 + 2*float64(x) + float64(y) + rng.NormFloat64()*noiseSigma
+				v := 20000 + 300*float64(x) + 150*float64(y) + rng.NormFloat64()*noiseSigma
 				if f >= changeFrame && x >= spotX0 && x < spotX0+spotSide && y >= spotY0 && y < spotY0+spotSide {
 					v += spotRise
 				}
-				img.Pix[y*img.Stride+x] = uint8(math.Max(0, math.Min(255, math.Round(v))))
+				img.SetGray16(x, y, color.Gray16{Y: uint16(math.Max(0, math.Min(65535, math.Round(v))))})
 			}
 		}
 		var buf bytes.Buffer
@@ -218,6 +219,17 @@ func TestWatchUploadShare(t *testing.T) {
 	poll[bool](t, tab, "the first watched frame", `["watching", "alarm"].includes(document.body.dataset.state)`, 40*time.Second)
 	shot(t, tab, "2-first-frames")
 
+	// The false-alarm target as "one per N hours at F frames per second"
+	// is turned into frames in the page: 2.5 h * 3600 s/h * 4 frames/s.
+	got := eval[string](t, tab, `(() => {
+		const q = (n) => document.querySelector("#settings [name='" + n + "']");
+		document.querySelector("#settings [name='arl0-mode'][value=hours]").checked = true;
+		q("hours").value = "2.5"; q("fps").value = "4";
+		q("fps").dispatchEvent(new Event("input", {bubbles: true}));
+		return document.body.dataset.arl0; })()`)
+	if want := fmt.Sprint(2.5 * 3600 * 4); got != want {
+		t.Errorf("target of one false alarm per 2.5 hours at 4 frames/s shows as %s frames, want %s", got, want)
+	}
 	// The share link, opened in a second tab of the same browser.
 	if err := chromedp.Do(tab, chromedp.Click(chromedp.CSS("#share"))); err != nil {
 		t.Fatal(err)
@@ -323,6 +335,17 @@ func TestWatchUploadShare(t *testing.T) {
 	if picked != fmt.Sprint(alarmFrame) {
 		t.Errorf("clicking the chart at frame %d picked the alarm of frame %s", alarmFrame, picked)
 	}
+	// The PNG picture made in the page, and the alarm
+	// list download behind the page's link.
+	eval[bool](t, tab, `document.getElementById("snapshot").click(), true`)
+	if n := poll[int](t, tab, "the PNG picture", `+document.body.dataset.snapshot || 0`, 5*time.Second); n < 100 {
+		t.Errorf("PNG picture of the frame is %d bytes", n)
+	}
+	csv, err := chromedp.Run(tab, chromedp.Evaluate[string](`fetch(document.getElementById("dl-csv").href).then(r => r.text())`, chromedp.EvalAwaitPromise))
+	if err != nil || !strings.Contains(csv, "\n"+fmt.Sprint(alarmFrame)+",") {
+		t.Errorf("alarms CSV from the page's link (%v) has no row for frame %d:\n%.300s", err, alarmFrame, csv)
+	}
+	shot(t, tab, "4b-heat")
 	// The viewer sees the same alarm.
 	vAlarm := poll[int](t, viewer, "the alarm in the viewer tab", `sparsewatch.state.alarms.size > 0 && Math.min(...sparsewatch.state.alarms.keys()) + 1`, 10*time.Second) - 1
 	if vAlarm != alarmFrame {

@@ -566,7 +566,8 @@
     const format = dv.getUint8(1), frame = dv.getUint32(4, true);
     const blob = new Blob([new Uint8Array(buf, 8)], { type: format === 1 ? "image/jpeg" : "image/png" });
     createImageBitmap(blob).then((bmp) => {
-      if (frame < S.previewFrame && S.previewFrame - frame < 1000) { bmp.close(); return; }
+      // An older preview is stale, unless it is the frame picked on the chart (a seek answer).
+      if (frame < S.previewFrame && frame !== S.picked) { bmp.close(); return; }
       if (S.preview) S.preview.close();
       S.preview = bmp; S.previewFrame = frame;
       body.dataset.preview = String(frame);
@@ -1058,6 +1059,12 @@
     const a = alarmAt(f);
     body.dataset.pickedAlarm = a ? String(a.frame) : "";
     if (S.role === "owner") send({ type: "seek", frame: f });
+    const i = findFrame(f);
+    let t = "Picked frame " + f;
+    if (i >= 0 && S.fr[i] === f) t += ": statistic " + fmt(S.g[i]) + (S.lim[i] > 0 ? " against the limit " + fmt(S.lim[i]) : "");
+    t += a ? ". It is inside the alarm that started at frame " + a.frame + "; its regions are dashed yellow." : ". No alarm at this frame.";
+    if (S.role !== "owner") t += " (Only the owner link can ask for that frame's picture.)";
+    $("picked-note").textContent = t;
     renderAlarms();
     dirty(); dirtyChart();
   }
