@@ -136,7 +136,7 @@ func (s Scenario) FrameInto(dst *image.Gray16, i int) error {
 	read2, perCount := s.m.noise()
 	r2, pc := float32(read2), float32(perCount)
 	ch := s.m.change(i)
-	rng := rand.New(rand.NewPCG(s.Seed, frameStream(i)))
+	rng := rand.New(rand.NewPCG(mix64(s.Seed), mix64(s.Seed^frameStream(i))))
 	for y := 0; y < s.Height; y++ {
 		row := bg[y*s.Width : (y+1)*s.Width]
 		out := dst.Pix[y*dst.Stride : y*dst.Stride+2*s.Width]
@@ -158,9 +158,18 @@ func (s Scenario) FrameInto(dst *image.Gray16, i int) error {
 	return nil
 }
 
-// frameStream derives the PCG stream of frame i; the constant keeps frame
-// streams apart from the layout streams, which use small fixed numbers.
-func frameStream(i int) uint64 { return 0x9e3779b97f4a7c15 ^ uint64(i) }
+// frameStream derives the PCG seed of frame i; the constant keeps frame
+// seeds apart from the layout seeds, which use small fixed numbers.
+func frameStream(i int) uint64 { return 0x9e3779b97f4a7c15 ^ mix64(uint64(i)) }
+
+// mix64 is the SplitMix64 finaliser (Steele, Lea & Flood 2014, OOPSLA), so
+// neighbouring frame numbers give unrelated PCG states.
+func mix64(z uint64) uint64 {
+	z += 0x9e3779b97f4a7c15
+	z = (z ^ z>>30) * 0xbf58476d1ce4e5b9
+	z = (z ^ z>>27) * 0x94d049bb133111eb
+	return z ^ z>>31
+}
 
 // Truth returns the ground truth for the scenario's current Frames and Seed.
 func (s Scenario) Truth() Truth {
