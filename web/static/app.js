@@ -108,6 +108,7 @@
   };
 
   function setState(st) {
+    if (body.dataset.state !== st && $("view")) dirty();
     body.dataset.state = st;
     const b = $("state-badge");
     b.hidden = false;
@@ -286,9 +287,14 @@
       for (const d of items) {
         const o = document.createElement("option");
         o.value = typeof d === "string" ? d : d.name;
-        o.textContent = typeof d === "string" ? d : (d.title || d.name) + (d.about ? " – " + d.about : "");
+        o.textContent = typeof d === "string" ? d : (d.title || d.name) +
+          (d.width ? " (" + d.width + " × " + d.height + ", " + d.frames + " frames)" : "");
+        o.dataset.about = (d && d.about) || "";
         sel.appendChild(o);
       }
+      const about = () => { const o = sel.selectedOptions[0]; $("demo-about").textContent = o ? o.dataset.about : ""; };
+      sel.addEventListener("change", about);
+      about();
     } catch { /* no list: the server picks its default scene */ }
     sel.hidden = sel.options.length === 0;
     $("demo").addEventListener("click", async () => {
@@ -479,7 +485,14 @@
     }
     body.dataset.fileErrors = String(errs.length);
     if (s.state === "calibrating" && typeof s.progress === "number") onCalibration({ progress: s.progress });
+    // Reference learning progress, before any watched frame.
+    const rf = (S.params && S.params.reference_frames) || 0;
+    if (s.state === "learning" && rf > 0 && typeof s.frames_seen === "number") {
+      const n = Math.min(s.frames_seen, rf);
+      setProgress($("cal-progress"), n / rf, "learning the reference: " + n + " of " + rf + " frames");
+    }
     updateFacts();
+    dirty();
   }
 
   function onCalibration(m) {
@@ -487,6 +500,8 @@
     const p = typeof m.progress === "number" ? m.progress : 0;
     setProgress(prog, p, p >= 1 ? "done" : "setting the limit… " + Math.round(p * 100) + "%");
     body.dataset.calibration = String(p);
+    S.status.calibration = Object.assign(S.status.calibration || {}, m);
+    dirty();
     if (m.limit) {
       S.limit = m.limit;
       let t = "Limit " + fmt(m.limit, 3);
@@ -611,7 +626,9 @@
   function updateFacts() {
     const f = S.cur ? S.cur.frame : (S.fr.length ? S.fr[S.fr.length - 1] : -1);
     const total = S.status.frames_total;
-    const ft = f < 0 ? "–" : "frame " + intText(f) + (total ? " of " + intText(total) : "");
+    const seen = S.status.frames_seen || 0;
+    const ft = f >= 0 ? "frame " + intText(f) + (total ? " of " + intText(total) : "") :
+      seen > 0 ? intText(seen) + " reference frames read" : "–";
     $("f-frame").textContent = ft;
     const fc = $("frame-count");
     fc.hidden = f < 0; fc.textContent = ft;
@@ -759,7 +776,25 @@
     ctx.setTransform(1, 0, 0, 1, 0, 0);
     ctx.fillStyle = "#1b1d20";
     ctx.fillRect(0, 0, w, h);
-    if (!S.W || !S.H) return;
+    if (!S.W || !S.H || (!S.preview && !S.cur)) {
+      // Nothing to show yet: say why, in the middle of the view.
+      const st = body.dataset.state;
+      const cal = S.status.calibration;
+      let msg = "Waiting for the first frame…";
+      const rf = (S.params && S.params.reference_frames) || 0;
+      if (st === "learning") msg = "Learning what normal looks like from the reference frames" +
+        (rf && S.status.frames_seen ? ": " + S.status.frames_seen + " of " + rf : "…");
+      if (st === "calibrating") msg = "Setting the control limit for the false-alarm target" + (cal && cal.progress > 0 ? ": " + Math.round(cal.progress * 100) + "%" : "…");
+      else if (st === "queued") msg = "Waiting to start…";
+      else if (st === "failed") msg = "The review stopped; see the message above.";
+      else if (st === "offline") msg = "Connection lost; trying again…";
+      ctx.fillStyle = "#c9ccd1"; ctx.textAlign = "center"; ctx.textBaseline = "middle";
+      ctx.font = (14 * lw) + "px DejaVu Sans, sans-serif";
+      ctx.fillText(msg, w / 2, h / 2);
+      ctx.textAlign = "start"; ctx.textBaseline = "alphabetic";
+      if (!S.W || !S.H) return;
+      if (!S.preview && !S.cur) return;
+    }
     ctx.imageSmoothingEnabled = false;
     ctx.setTransform(zoom, 0, 0, zoom, -px * zoom, -py * zoom);
     ctx.fillStyle = "#3a3d42";
