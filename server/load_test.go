@@ -20,13 +20,13 @@ import (
 // (the target is >= 0.9). Run it with scripts/load-viewers.
 func BenchmarkViewerLoad(b *testing.B) {
 	const (
-		w, h, n  = 96, 96, 1200
+		w, h, n  = 96, 96, 2000
 		readers  = 20
 		rounds   = 2
-		paramsFn = `{"budget":"5%%","top_r":8,"arl0":300,"reference_frames":20,"pace":0,"seed":%d}`
+		paramsFn = `{"budget":"5%%","top_r":8,"arl0":300,"reference_frames":100,"paths":50,"pace":0,"seed":%d}`
 	)
 	ts := mustServer(b, Options{})
-	frames := synthFrames(b, w, h, n, [][2]int{{400, 450}, {900, 950}})
+	frames := synthFrames(b, w, h, n, [][2]int{{1400, 1450}})
 	cr := ts.mustUpload(b, frames, fmt.Sprintf(paramsFn, 1))
 	sess, _ := ts.session(cr.ID)
 	waitDone := func() Status {

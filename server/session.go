@@ -31,6 +31,7 @@ const (
 	maxErrors     = 200     // frame errors kept per session
 	maxHistory    = 1 << 15 // chart points kept; older ones are thinned 2:1
 	previewPeriod = 200 * time.Millisecond
+	publishGap    = minFrameGap / 2
 	heatPeriod    = 200 * time.Millisecond
 	reportFile    = "report.json"
 )
@@ -119,6 +120,8 @@ type runState struct {
 	enc         *maskEncoder
 	buf         []byte
 	lastPreview time.Time
+	lastPublish time.Time
+	lastWire    byte
 	paceStart   time.Time
 	paceFrames  int
 	watchStart  time.Time // first watched frame of this process
@@ -500,14 +503,27 @@ func (s *Session) onFrame(ctx context.Context, fu frameUpdate) error {
 			return err
 		}
 	}
+	// Viewers take at most one frame update per minFrameGap, so a fast
+	// review encodes and publishes one every publishGap (and every change
+	// of state) instead of every frame.
 	if s.hub.count.Load() > 0 && run.enc != nil {
+		now := time.Now()
+		if wire == run.lastWire && now.Sub(run.lastPublish) < publishGap {
+			return s.next(ctx, replay)
+		}
+		run.lastWire, run.lastPublish = wire, now
 		run.buf = run.enc.encode(make([]byte, 0, frameHeaderLen+len(run.buf)), wire, fu.Frame, fu.G, fu.Limit, fu.Read, fu.Regions)
 		s.hub.publish(msgFrame, run.buf)
-		if now := time.Now(); now.Sub(run.lastPreview) >= previewPeriod {
+		if now.Sub(run.lastPreview) >= previewPeriod {
 			run.lastPreview = now
 			s.previews.request(previewReq{frame: fu.Frame, name: fu.Name})
 		}
 	}
+	return s.next(ctx, replay)
+}
+
+// next returns when the review may go on to the next frame.
+func (s *Session) next(ctx context.Context, replay bool) error {
 	if replay {
 		return ctx.Err()
 	}
