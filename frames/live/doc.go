@@ -1,0 +1,10 @@
+// Package live delivers frames from sources that keep producing them: a
+// camera URL (MJPEG over HTTP, or a single-image URL polled) fetched only
+// under an operator's allow-list, and a folder watched for new frame files.
+//
+// Sources hand over encoded bytes (JPEG, PNG, ...) on a bounded channel and
+// leave decoding to the consumer. A camera never waits for a slow consumer:
+// when the queue is full its oldest frame is dropped and counted, so the
+// consumer always sees the freshest frames. A watched folder waits instead,
+// because its files stay on disk, unless told to drop.
+package live
