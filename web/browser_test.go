@@ -136,7 +136,7 @@ func eval[T any](t *testing.T, tab context.Context, expr string) T {
 // changeFrame and stays to the end.
 const (
 	testW, testH    = 32, 24 // small: calibration time grows with the stream count
-	testFrames      = 200
+	testFrames      = 280 // the alarm stays on from about frame 150 to the end
 	testRef         = 60
 	changeFrame     = 120
 	spotX0, spotY0  = 20, 10
@@ -206,7 +206,7 @@ func TestWatchUploadShare(t *testing.T) {
 		f.querySelector("[name=budget]").value = "10%%";
 		f.querySelector("[name=arl0]").value = 500;
 		f.querySelector("[name=tile]").value = 2;
-		f.querySelector("[name=pace]").value = 40;
+		f.querySelector("[name=pace]").value = 30;
 		return true; })()`, testRef))
 	if err := chromedp.Do(tab, chromedp.SetUploadFiles(chromedp.CSS("#files"), paths)); err != nil {
 		t.Fatal(err)
@@ -254,27 +254,6 @@ func TestWatchUploadShare(t *testing.T) {
 		t.Errorf("owner at frame %d, viewer at frame %d: they should follow the same review", ownerNow, viewerNow)
 	}
 	t.Logf("viewer frames %d -> %d; owner %d, viewer %d", f1, f2, ownerNow, viewerNow)
-
-	// The viewer has no working controls, and a write with its token is refused.
-	ctl := eval[map[string]any](t, viewer, `(() => ({
-		fieldsDisabled: document.getElementById("settings-fields").disabled,
-		applyShown: document.getElementById("apply").offsetParent !== null,
-		compareShown: document.getElementById("compare").offsetParent !== null,
-		shareShown: document.getElementById("share").offsetParent !== null,
-		budgetDisabled: document.querySelector("#settings [name=budget]").matches(":disabled"),
-	}))()`)
-	for k, want := range map[string]bool{"fieldsDisabled": true, "applyShown": false, "compareShown": false, "shareShown": false, "budgetDisabled": true} {
-		if ctl[k] != want {
-			t.Errorf("viewer tab: %s = %v, want %v", k, ctl[k], want)
-		}
-	}
-	code, err := chromedp.Run(viewer, chromedp.Evaluate[int](`fetch("/api/sessions/" + document.body.dataset.session + "/params", {
-		method: "PATCH", headers: {"Authorization": "Bearer " + sparsewatch.state.token, "Content-Type": "application/json"},
-		body: JSON.stringify({budget: "50%"})}).then(r => r.status)`, chromedp.EvalAwaitPromise))
-	if err != nil || code != http.StatusForbidden {
-		t.Errorf("PATCH params with the share token: status %d (%v), want 403", code, err)
-	}
-	shot(t, viewer, "3-share-tab")
 
 	// The alarm: listed, shaded on the chart, its region outlined on the
 	// frame view. Probe the canvas in the same turn as the drawing it
@@ -346,6 +325,27 @@ func TestWatchUploadShare(t *testing.T) {
 		t.Errorf("alarms CSV from the page's link (%v) has no row for frame %d:\n%.300s", err, alarmFrame, csv)
 	}
 	shot(t, tab, "4b-heat")
+	// The viewer has no working controls, and a write with its token is refused.
+	ctl := eval[map[string]any](t, viewer, `(() => ({
+		fieldsDisabled: document.getElementById("settings-fields").disabled,
+		applyShown: document.getElementById("apply").offsetParent !== null,
+		compareShown: document.getElementById("compare").offsetParent !== null,
+		shareShown: document.getElementById("share").offsetParent !== null,
+		budgetDisabled: document.querySelector("#settings [name=budget]").matches(":disabled"),
+	}))()`)
+	for k, want := range map[string]bool{"fieldsDisabled": true, "applyShown": false, "compareShown": false, "shareShown": false, "budgetDisabled": true} {
+		if ctl[k] != want {
+			t.Errorf("viewer tab: %s = %v, want %v", k, ctl[k], want)
+		}
+	}
+	code, err := chromedp.Run(viewer, chromedp.Evaluate[int](`fetch("/api/sessions/" + document.body.dataset.session + "/params", {
+		method: "PATCH", headers: {"Authorization": "Bearer " + sparsewatch.state.token, "Content-Type": "application/json"},
+		body: JSON.stringify({budget: "50%"})}).then(r => r.status)`, chromedp.EvalAwaitPromise))
+	if err != nil || code != http.StatusForbidden {
+		t.Errorf("PATCH params with the share token: status %d (%v), want 403", code, err)
+	}
+	shot(t, viewer, "3-share-tab")
+
 	// The viewer sees the same alarm.
 	vAlarm := poll[int](t, viewer, "the alarm in the viewer tab", `sparsewatch.state.alarms.size > 0 && Math.min(...sparsewatch.state.alarms.keys()) + 1`, 10*time.Second) - 1
 	if vAlarm != alarmFrame {
@@ -354,6 +354,23 @@ func TestWatchUploadShare(t *testing.T) {
 	shot(t, viewer, "5-share-alarm")
 	poll[bool](t, tab, "the end of the review", `document.body.dataset.state === "finished"`, 30*time.Second)
 	shot(t, tab, "6-finished")
+
+	// The owner's controls work: a new budget is applied and the review
+	// starts again from frame 0 with it.
+	eval[bool](t, tab, `(() => { document.querySelector("#settings [name=budget]").value = "20%";
+		document.querySelector("#settings [name='arl0-mode'][value=frames]").checked = true;
+		document.getElementById("apply").click(); return true; })()`)
+	msg := poll[string](t, tab, "an answer to Apply", `(() => { const m = document.getElementById("settings-msg").textContent;
+		return m !== "Sending…" && m; })()`, 10*time.Second)
+	if !strings.HasPrefix(msg, "Applied") {
+		t.Fatalf("Apply answered %q", msg)
+	}
+	budget, err := chromedp.Run(tab, chromedp.Evaluate[string](`fetch("/api/sessions/" + document.body.dataset.session,
+		{headers: {"Authorization": "Bearer " + sparsewatch.state.token}}).then(r => r.json()).then(s => s.params.budget)`, chromedp.EvalAwaitPromise))
+	if err != nil || budget != "20%" {
+		t.Errorf("after Apply the session's budget is %q (%v), want 20%%", budget, err)
+	}
+	poll[bool](t, tab, "the review to start again", `document.body.dataset.state !== "finished" && +document.body.dataset.frame < 279`, 10*time.Second)
 }
 
 // Colours the page draws with (style.css / app.js COLORS).
