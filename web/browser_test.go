@@ -136,7 +136,7 @@ func eval[T any](t *testing.T, tab context.Context, expr string) T {
 // changeFrame and stays to the end.
 const (
 	testW, testH    = 32, 24 // small: calibration time grows with the stream count
-	testFrames      = 280 // the alarm stays on from about frame 150 to the end
+	testFrames      = 280    // the alarm stays on from about frame 150 to the end
 	testRef         = 60
 	changeFrame     = 120
 	spotX0, spotY0  = 20, 10
