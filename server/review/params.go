@@ -37,9 +37,18 @@ type Params struct {
 	// known exactly) or "bootstrap" (the user's own standardised reference
 	// frames drawn with replacement).
 	Calibration string `json:"calibration,omitempty"`
-	// Paths is the number of simulated calibration paths (0 = monitor's default).
+	// Paths is the number of simulated calibration paths (0 = monitor's
+	// default); as many again, halved, verify the limit.
 	Paths int `json:"paths,omitempty"`
+	// Work caps the stream reads the calibration simulates per stage
+	// (0 = DefaultWork); beyond it the limit is found by tail extrapolation.
+	Work float64 `json:"work,omitempty"`
 }
+
+// DefaultWork is the review's default cap on simulated stream reads per
+// calibration stage: a few seconds of one core, so a scan does not spend
+// longer calibrating than reading.
+const DefaultWork = 5e8
 
 // DefaultParams returns the documented defaults.
 func DefaultParams() Params {
@@ -110,6 +119,8 @@ func (p Params) Validate() error {
 		return fmt.Errorf("limit %v must be a finite number >= 0", p.Limit)
 	case p.Paths < 0:
 		return fmt.Errorf("paths %d must be >= 0", p.Paths)
+	case p.Work < 0 || math.IsNaN(p.Work):
+		return fmt.Errorf("work %v must be >= 0", p.Work)
 	}
 	switch monitor.ModelKind(p.Model) {
 	case monitor.Robust, monitor.NormalScore, monitor.MeanSD:

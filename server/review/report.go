@@ -35,11 +35,13 @@ type Report struct {
 
 // Alarm is one episode, frames counted over the whole sequence.
 type Alarm struct {
-	Frame       int      `json:"frame"`
-	EndFrame    int      `json:"end_frame"` // -1: still on at the end
-	Peak        float64  `json:"peak"`
-	Regions     []Region `json:"regions"`                // at the alarm frame, strongest first
-	PeakRegions []Region `json:"peak_regions,omitempty"` // at the episode's largest G
+	Frame    int     `json:"frame"`
+	EndFrame int     `json:"end_frame"` // -1: still on at the end
+	Peak     float64 `json:"peak"`
+	// Regions are the regions at the episode's largest G (so far, while it
+	// is still on), strongest first; StartRegions those at the alarm frame.
+	Regions      []Region `json:"regions"`
+	StartRegions []Region `json:"start_regions"`
 }
 
 // Region is a group of changed streams in pixel coordinates.

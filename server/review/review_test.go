@@ -16,50 +16,81 @@ func synth(t *testing.T, sp frames.Synthetic) frames.Source {
 	return src
 }
 
-// A disc shifting by 3 noise sigma is found after the change, at its place,
-// by every policy; reading costs what the budget says.
+// scoreRun returns the alarms before the change and the first alarm after it.
+func scoreRun(rep Report, change int) (before int, first *Alarm) {
+	for i := range rep.Alarms {
+		if rep.Alarms[i].Frame < change {
+			before++
+		} else if first == nil {
+			first = &rep.Alarms[i]
+		}
+	}
+	return before, first
+}
+
+// A disc shifting by 1.6 noise sigma is found after the change, at its
+// place, by each policy; pixels read are what the budget says. The limit
+// comes from the estimated calibration: with a plain normal calibration
+// the reference model's own estimation error raises false alarms before
+// the change (see TestNormalCalibrationUnderstatesFalseAlarms).
 func TestRunFindsChange(t *testing.T) {
-	sp := frames.Synthetic{Width: 40, Height: 30, Frames: 160, Level: 1000, Gradient: 50, Noise: 10, Seed: 3,
-		ChangeFrame: 100, CX: 25, CY: 12, Radius: 3, Delta: 30}
+	sp := frames.Synthetic{Width: 24, Height: 18, Frames: 200, Level: 1000, Gradient: 50, Noise: 10, Seed: 3,
+		ChangeFrame: 120, CX: 14, CY: 9, Radius: 3, Delta: 16}
 	p := DefaultParams()
-	p.ReferenceFrames = 30
 	p.Budget = "10%"
 	p.ARL0 = 500
-	p.Paths = 60
-	reps, err := RunPolicies(context.Background(), synth(t, sp), p, []string{"adaptive", "random", "full"}, Hooks{})
+	p.Paths = 20
+	p.Model = "mean-sd"
+	reps, err := RunPolicies(context.Background(), synth(t, sp), p, []string{"adaptive", "full"}, Hooks{})
 	if err != nil {
 		t.Fatal(err)
 	}
 	for _, rep := range reps {
-		t.Logf("%s: h=%.3f alarms=%+v pixels=%d", rep.Policy, rep.ControlLimit, rep.Alarms, rep.PixelsRead)
-		if rep.Frames != 160 || rep.FramesWatched != 130 || rep.FirstWatched != 30 {
+		before, first := scoreRun(rep, sp.ChangeFrame)
+		t.Logf("%s: h=%.2f (%s) before=%d first=%+v pixels=%d", rep.Policy, rep.ControlLimit, rep.Calibration.Note, before, first, rep.PixelsRead)
+		if rep.Frames != 200 || rep.FramesWatched != 150 || rep.FirstWatched != 50 {
 			t.Errorf("%s: frames %d watched %d first %d", rep.Policy, rep.Frames, rep.FramesWatched, rep.FirstWatched)
 		}
-		var first *Alarm
-		before := 0
-		for i := range rep.Alarms {
-			if rep.Alarms[i].Frame < sp.ChangeFrame {
-				before++
-			} else if first == nil {
-				first = &rep.Alarms[i]
-			}
-		}
 		if before > 1 || first == nil {
-			t.Fatalf("%s: %d alarms before the change, first after: %v", rep.Policy, before, first)
+			t.Fatalf("%s: %d alarms before the change; first after: %v", rep.Policy, before, first)
 		}
 		if len(first.Regions) == 0 {
 			t.Fatalf("%s: alarm without a region", rep.Policy)
 		}
 		b := first.Regions[0].BBox
-		if !(b[0] <= 25 && 25 <= b[2] && b[1] <= 12 && 12 <= b[3]) {
-			t.Errorf("%s: first region %v misses the centre (25,12)", rep.Policy, b)
+		if !(b[0] <= 14 && 14 <= b[2] && b[1] <= 9 && 9 <= b[3]) {
+			t.Errorf("%s: first region %v misses the centre (14,9)", rep.Policy, b)
 		}
-		want := int64(30*40*30) + int64(rep.FramesWatched)*int64(rep.Budget)
-		if rep.Policy == "full" {
-			want = int64(160 * 40 * 30)
-		}
+		want := int64(50*24*18) + int64(rep.FramesWatched)*int64(rep.Budget)
 		if rep.PixelsRead != want {
 			t.Errorf("%s: pixels read %d, want %d", rep.Policy, rep.PixelsRead, want)
 		}
+	}
+}
+
+// With no change at all, a limit calibrated as if each stream's level and
+// scale were known exactly (normal) alarms within a few hundred frames
+// although it was set for ARL0 = 1000: the robust model's estimation error
+// from 50 reference frames leaves lasting biases that CUSUMs accumulate.
+// The estimated calibration, which simulates that error, holds.
+func TestNormalCalibrationUnderstatesFalseAlarms(t *testing.T) {
+	sp := frames.Synthetic{Width: 24, Height: 18, Frames: 350, Level: 1000, Noise: 10, Seed: 5, ChangeFrame: -1}
+	p := DefaultParams()
+	p.Budget, p.ARL0, p.Paths, p.Policy = "10%", 1000, 30, "adaptive"
+	counts := map[string]int{}
+	for _, cal := range []string{"normal", "estimated"} {
+		p.Calibration = cal
+		rep, err := Run(context.Background(), synth(t, sp), p, Hooks{})
+		if err != nil {
+			t.Fatal(err)
+		}
+		counts[cal] = len(rep.Alarms)
+		t.Logf("%s calibration: h = %.2f, %d alarms in %d in-control frames", cal, rep.ControlLimit, len(rep.Alarms), rep.FramesWatched)
+	}
+	if counts["normal"] == 0 {
+		t.Errorf("normal calibration gave no false alarm; the estimation effect this test documents is gone")
+	}
+	if counts["estimated"] != 0 {
+		t.Errorf("estimated calibration gave %d false alarms in 300 frames at ARL0 1000", counts["estimated"])
 	}
 }

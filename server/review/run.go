@@ -267,7 +267,16 @@ func (rv *reviewer) calibrate(ctx context.Context) error {
 		limit := r.p.Limit
 		if limit <= 0 {
 			t0 := time.Now()
-			spec := monitor.CalibrationSpec{Config: r.cfg, TargetARL0: r.p.ARL0, Paths: r.p.Paths, Bootstrap: boot, Seed: r.p.Seed + 1}
+			work := r.p.Work
+			if work <= 0 {
+				work = DefaultWork
+			}
+			paths := r.p.Paths
+			if paths <= 0 {
+				paths = defaultPaths
+			}
+			spec := monitor.CalibrationSpec{Config: r.cfg, TargetARL0: r.p.ARL0, Paths: paths, Verify: max(10, paths/2),
+				WorkCap: work, Bootstrap: boot, Seed: r.p.Seed + 1}
 			if rv.h.Calibrating != nil {
 				idx, name := i, r.p.Policy
 				spec.Progress = func(done, total int) { rv.h.Calibrating(idx, name, done, total) }
@@ -293,6 +302,9 @@ func (rv *reviewer) calibrate(ctx context.Context) error {
 	}
 	return nil
 }
+
+// defaultPaths is the review's number of calibration paths.
+const defaultPaths = 100
 
 // estimatedFrameCount is how many frames the estimated calibration draws
 // from (fewer for very large grids, to bound memory).
@@ -369,21 +381,30 @@ func (rv *reviewer) step(ri int, r *run, it frames.Item) error {
 	r.stepAt = append(r.stepAt, int32(it.Index))
 	r.frames++
 	if upd.Started != nil {
-		a := Alarm{Frame: r.seq(upd.Started.Frame), EndFrame: -1, Peak: upd.Started.Peak, Regions: rv.regions(r, upd.Started.Regions)}
+		start := rv.regions(r, upd.Started.Regions)
+		a := Alarm{Frame: r.seq(upd.Started.Frame), EndFrame: -1, Peak: upd.Started.Peak,
+			Regions: append([]Region(nil), start...), StartRegions: start}
 		r.alarms = append(r.alarms, a)
 		r.open = len(r.alarms) - 1
 		if rv.h.Alarm != nil {
 			rv.h.Alarm(ri, r.p.Policy, a)
 		}
 	}
-	if r.open >= 0 && upd.G > r.alarms[r.open].Peak {
-		r.alarms[r.open].Peak = upd.G
+	if r.open >= 0 && upd.G >= r.alarms[r.open].Peak && len(upd.Regions) > 0 {
+		// The report keeps the regions at the episode's largest G so far:
+		// at the alarm frame only the first few streams of a change stand
+		// out; at the peak the region is the fuller picture.
+		a := &r.alarms[r.open]
+		a.Peak = upd.G
+		a.Regions = rv.regionsInto(a.Regions[:0], r, upd.Regions)
 	}
 	if upd.Ended != nil && r.open >= 0 {
 		a := &r.alarms[r.open]
 		a.EndFrame = r.seq(upd.Ended.Frame)
+		if upd.Ended.Peak > a.Peak && len(upd.Ended.Regions) > 0 {
+			a.Regions = rv.regionsInto(a.Regions[:0], r, upd.Ended.Regions)
+		}
 		a.Peak = math.Max(a.Peak, upd.Ended.Peak)
-		a.PeakRegions = rv.regions(r, upd.Ended.Regions)
 		r.open = -1
 		if rv.h.Alarm != nil {
 			rv.h.Alarm(ri, r.p.Policy, *a)
@@ -409,7 +430,11 @@ func (r *run) seq(f int) int {
 
 // regions maps engine regions (stream grid) to pixel coordinates.
 func (rv *reviewer) regions(r *run, in []monitor.Region) []Region {
-	out := make([]Region, 0, len(in))
+	return rv.regionsInto(make([]Region, 0, len(in)), r, in)
+}
+
+// regionsInto appends the mapped regions to out.
+func (rv *reviewer) regionsInto(out []Region, r *run, in []monitor.Region) []Region {
 	t := rv.tiler
 	for _, g := range in {
 		cx, cy := t.PixelPoint(g.CX, g.CY)
