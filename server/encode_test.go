@@ -18,7 +18,8 @@ type decodedFrame struct {
 	frame        uint32
 	g, limit     float32
 	mw, mh       int
-	cells        map[int]bool
+	cells        []bool // by cell index
+	marked       int
 	regions      []box
 	maskEncoding uint8
 }
@@ -31,7 +32,8 @@ func decodeFrameMsg(t *testing.T, b []byte) decodedFrame {
 	}
 	d := decodedFrame{state: b[1], scale: int(le.Uint16(b[2:])), frame: le.Uint32(b[4:]),
 		g: math.Float32frombits(le.Uint32(b[8:])), limit: math.Float32frombits(le.Uint32(b[12:])),
-		mw: int(le.Uint16(b[16:])), mh: int(le.Uint16(b[18:])), maskEncoding: b[20], cells: map[int]bool{}}
+		mw: int(le.Uint16(b[16:])), mh: int(le.Uint16(b[18:])), maskEncoding: b[20]}
+	d.cells = make([]bool, d.mw*d.mh)
 	n := int(le.Uint32(b[21:]))
 	mask := b[25 : 25+n]
 	switch d.maskEncoding {
@@ -39,6 +41,7 @@ func decodeFrameMsg(t *testing.T, b []byte) decodedFrame {
 		for c := 0; c < d.mw*d.mh; c++ {
 			if mask[c/8]&(1<<(c%8)) != 0 {
 				d.cells[c] = true
+				d.marked++
 			}
 		}
 	case 1:
@@ -49,7 +52,11 @@ func decodeFrameMsg(t *testing.T, b []byte) decodedFrame {
 				t.Fatal(err)
 			}
 			c += int(v)
+			if c >= len(d.cells) || (d.marked > 0 && v == 0) {
+				t.Fatalf("list cell %d outside %d cells or repeated", c, len(d.cells))
+			}
 			d.cells[c] = true
+			d.marked++
 		}
 	default:
 		t.Fatalf("mask encoding %d", d.maskEncoding)
@@ -110,16 +117,20 @@ func TestFrameMessageRoundTripAndSize(t *testing.T) {
 				t.Fatalf("mask %d bytes > %d", len(msg), maxMaskBytes)
 			}
 			// Every read stream's cell is marked, and every marked cell holds a read stream.
-			want := map[int]bool{}
+			want := make([]bool, d.mw*d.mh)
+			nwant := 0
 			for _, i := range read {
 				x, y := int(i)%gw/d.scale, int(i)/gw/d.scale
+				if !want[y*d.mw+x] {
+					nwant++
+				}
 				want[y*d.mw+x] = true
 			}
-			if len(want) != len(d.cells) {
-				t.Fatalf("scale %d: %d cells marked, want %d", d.scale, len(d.cells), len(want))
+			if nwant != d.marked {
+				t.Fatalf("scale %d: %d cells marked, want %d", d.scale, d.marked, nwant)
 			}
-			for c := range want {
-				if !d.cells[c] {
+			for c, w := range want {
+				if w && !d.cells[c] {
 					t.Fatalf("cell %d not marked", c)
 				}
 			}
@@ -130,12 +141,8 @@ func TestFrameMessageRoundTripAndSize(t *testing.T) {
 				if len(m) > maxMaskBytes {
 					t.Fatalf("chosen mask over budget")
 				}
-				cells := map[int]bool{}
 				s := d.scale / 2
 				w := (gw + s - 1) / s
-				for _, i := range read {
-					cells[int(i)/gw/s*w+int(i)%gw/s] = true
-				}
 				if h := (gh + s - 1) / s; (w*h+7)/8 <= maxMaskBytes {
 					t.Fatalf("scale %d chosen but the bitset at %d (%d bytes) fits", d.scale, s, (w*h+7)/8)
 				}

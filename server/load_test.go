@@ -23,7 +23,7 @@ func BenchmarkViewerLoad(b *testing.B) {
 		w, h, n  = 96, 96, 2000
 		readers  = 20
 		rounds   = 2
-		paramsFn = `{"budget":"5%%","top_r":8,"arl0":300,"reference_frames":100,"paths":50,"pace":0,"seed":%d}`
+		paramsFn = `{"budget":"5%%","top_r":8,"limit":40,"reference_frames":100,"pace":0,"seed":%d}`
 	)
 	ts := mustServer(b, Options{})
 	frames := synthFrames(b, w, h, n, [][2]int{{1400, 1450}})

@@ -83,7 +83,7 @@ func reviewParams(p Params) review.Params {
 		Budget: string(p.Budget), Policy: p.Policy, TopR: p.TopR, Shift: p.Shift,
 		Compensation: p.Compensation, Tile: p.Tile, ARL0: p.ARL0,
 		ReferenceFrames: p.ReferenceFrames, Model: p.Model, Seed: p.Seed,
-		Calibration: p.Calibration, Paths: p.Paths,
+		Calibration: p.Calibration, Paths: p.Paths, Limit: p.Limit,
 	}
 }
 
@@ -98,7 +98,7 @@ func defaultReview(ctx context.Context, s *Session) (*Report, error) {
 	defer src.Close()
 	rp := reviewParams(m.Params)
 	cached, haveCached := loadCalibration(s.dir, rp)
-	if haveCached {
+	if haveCached && rp.Limit <= 0 {
 		rp.Limit = cached.Limit // same limit as before a restart, without recalibrating
 	}
 	s.setState(StateLearning, "")
@@ -114,7 +114,7 @@ func defaultReview(ctx context.Context, s *Session) (*Report, error) {
 		}
 		return nil, errorf(KindInvalid, "%s", trimPrefix(err.Error()))
 	}
-	if haveCached && rep.Calibration == nil {
+	if haveCached && m.Params.Limit <= 0 && rep.Calibration == nil {
 		rep.Calibration = cached.Report
 	}
 	rep.Skipped = skipped

@@ -28,6 +28,8 @@ type Params struct {
 	// model the limit is calibrated on, and the number of simulated paths.
 	Calibration string `json:"calibration,omitempty"`
 	Paths       int    `json:"paths,omitempty"`
+	// Limit, when > 0, is the control limit to use; calibration is skipped.
+	Limit float64 `json:"limit,omitempty"`
 	// Pace is the review speed in frames per second so a person can watch
 	// an offline review; 0 reviews as fast as possible.
 	Pace float64 `json:"pace"`

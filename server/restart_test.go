@@ -19,7 +19,7 @@ import (
 )
 
 // restartParams are small enough for a quick review and calibration.
-const restartParams = `{"budget":"10%","top_r":4,"arl0":300,"reference_frames":200,"seed":7,"paths":100`
+const restartParams = `{"budget":"10%","top_r":4,"arl0":300,"reference_frames":200,"seed":7,"paths":50`
 
 var (
 	binOnce sync.Once

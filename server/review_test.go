@@ -17,7 +17,7 @@ func TestUploadReview(t *testing.T) {
 	ts := mustServer(t, Options{})
 	files := synthFrames(t, 32, 24, 320, [][2]int{{240, 280}})
 	files = append(files[:40], append([]upFile{{"frame40b.png", []byte("\x89PNG\r\n\x1a\nbroken")}}, files[40:]...)...)
-	cr := ts.mustUpload(t, files, restartParams+`,"pace":0}`)
+	cr := ts.mustUpload(t, files, restartParams+`,"limit":32.5,"pace":0}`) // limit: what calibrating these params gives
 	rep := waitReport(t, ts.Server, cr.ID)
 	st, _ := ts.session(cr.ID)
 	status := st.Status()
@@ -63,7 +63,7 @@ func TestReportEqualsScan(t *testing.T) {
 	}
 	out := filepath.Join(t.TempDir(), "scan.json")
 	cmd := exec.Command(bin, "scan", dir, "--budget", "10%", "--top-r", "4", "--arl0", "300", "--warmup", "200",
-		"--seed", "7", "--paths", "100", "--out", out)
+		"--seed", "7", "--paths", "50", "--out", out)
 	if msg, err := cmd.CombinedOutput(); err != nil {
 		t.Fatalf("scan: %v\n%s", err, msg)
 	}
@@ -71,7 +71,7 @@ func TestReportEqualsScan(t *testing.T) {
 	mustReadJSON(t, out, &want)
 
 	ts := mustServer(t, Options{})
-	cr := ts.mustUpload(t, files, `{"budget":"10%","top_r":4,"arl0":300,"reference_frames":200,"seed":7,"paths":100,"pace":0}`)
+	cr := ts.mustUpload(t, files, `{"budget":"10%","top_r":4,"arl0":300,"reference_frames":200,"seed":7,"paths":50,"pace":0}`)
 	waitReport(t, ts.Server, cr.ID)
 	code, body := ts.do(t, "GET", "/api/sessions/"+cr.ID+"/report", cr.OwnerToken, "", nil)
 	if code != http.StatusOK {

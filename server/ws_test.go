@@ -23,7 +23,7 @@ func dialWS(t *testing.T, ts *testServer, id, tok string, h http.Header) (*webso
 func TestWebsocketViewers(t *testing.T) {
 	ts := mustServer(t, Options{})
 	files := synthFrames(t, 32, 24, 260, [][2]int{{220, 250}})
-	cr := ts.mustUpload(t, files, `{"budget":"10%","top_r":4,"arl0":300,"reference_frames":200,"seed":7,"paths":100,"pace":40}`)
+	cr := ts.mustUpload(t, files, `{"budget":"10%","top_r":4,"arl0":300,"reference_frames":200,"seed":7,"limit":32.5,"pace":40}`)
 
 	if _, res, err := dialWS(t, ts, cr.ID, cr.ShareToken, http.Header{"Origin": {"http://elsewhere.example"}}); err == nil || res == nil || res.StatusCode != http.StatusForbidden {
 		t.Fatalf("foreign origin: err %v, response %v; want 403", err, res)
@@ -62,8 +62,8 @@ func TestWebsocketViewers(t *testing.T) {
 				switch msg[0] {
 				case msgFrame:
 					d := decodeFrameMsg(t, msg)
-					if d.mw != 32 || d.mh != 24 || d.scale != 1 || len(d.cells) != 77 {
-						t.Fatalf("frame update: mask %dx%d scale %d with %d cells, want 32x24 scale 1, 77 read", d.mw, d.mh, d.scale, len(d.cells))
+					if d.mw != 32 || d.mh != 24 || d.scale != 1 || d.marked != 77 {
+						t.Fatalf("frame update: mask %dx%d scale %d with %d cells, want 32x24 scale 1, 77 read", d.mw, d.mh, d.scale, d.marked)
 					}
 					seen = append(seen, d.frame)
 				case msgPreview:
