@@ -21,6 +21,7 @@ type PlanSpec struct {
 	Runs          int     // delay runs per policy and budget (default 200)
 	Paths         int     // calibration paths (default 200)
 	Burnin        int     // frames before the change and before counting run lengths (0 = SteadyBurnin per policy)
+	Quiet         int     // alarm-free frames before the change for a run to count (0 = min(burn-in, 1000), the same for every policy)
 	Seed          uint64
 	Progress      func(done, total int) // work units finished; calls are serialised
 }
@@ -157,6 +158,11 @@ func Plan(ctx context.Context, spec PlanSpec) ([]PlanResult, error) {
 		done += 2 * paths
 		cfg.Limit = cal.Limit
 		sc.Burnin = cal.Burnin // the change comes in the same steady state
+		if spec.Quiet == 0 {
+			sc.Quiet = min(sc.Burnin, 1000)
+		} else {
+			sc.Quiet = spec.Quiet
+		}
 		res, err := Simulate(ctx, sc, []Config{cfg}, report(done))
 		if err != nil {
 			return nil, fmt.Errorf("monitor: plan %s at budget %d: %w", j.policy, j.q, err)

@@ -124,3 +124,28 @@ func TestSimulateErrors(t *testing.T) {
 		})
 	}
 }
+
+// TestSimulateQuietWindow: only alarms in the quiet window before the
+// change exclude a run, so a short window excludes fewer runs.
+func TestSimulateQuietWindow(t *testing.T) {
+	cfg := Config{Width: 12, Height: 12, Budget: 9, TopR: 5, Policy: Adaptive}
+	cal, err := Calibrate(context.Background(), CalibrationSpec{Config: cfg, TargetARL0: 100, Paths: 30, Verify: -1, Burnin: 200, Seed: 6})
+	if err != nil {
+		t.Fatal(err)
+	}
+	cfg.Limit = cal.Limit
+	sc := Scenario{Width: 12, Height: 12, Radius: 1.5, Shift: 1.5, Burnin: 200, Runs: 60, Seed: 7}
+	all, err := Simulate(context.Background(), sc, []Config{cfg}, nil)
+	if err != nil {
+		t.Fatal(err)
+	}
+	sc.Quiet = 50
+	quiet, err := Simulate(context.Background(), sc, []Config{cfg}, nil)
+	if err != nil {
+		t.Fatal(err)
+	}
+	// ARL0 ~ 100: about 86% of runs alarm within 200 frames, 40% within 50.
+	if !(quiet[0].FalseAlarms < all[0].FalseAlarms) || quiet[0].Runs+quiet[0].FalseAlarms != 60 {
+		t.Errorf("false alarms with a 50-frame quiet window %d, with the whole burn-in %d", quiet[0].FalseAlarms, all[0].FalseAlarms)
+	}
+}
