@@ -12,7 +12,7 @@
 //     of a furnace, 320 x 240. The wall is 1050-1150 K with a smooth gradient;
 //     counts follow Wien's approximation of Planck's law at 3.9 µm, the optics
 //     darken the corners by the cos^4 law, each pixel has a small fixed gain
-//     error, and the wall temperature drifts by a fraction of a kelvin. Sensor
+//     error, and the wall temperature drifts by 0.05 K. Sensor
 //     noise is read noise plus shot noise, so its variance grows linearly with
 //     the signal. At the change frame the lining starts to thin at one place:
 //     a hot spot a few kelvin warmer (about 1.6 noise sigma) appears and its
