@@ -498,7 +498,7 @@
   function onCalibration(m) {
     const prog = $("cal-progress");
     const p = typeof m.progress === "number" ? m.progress : 0;
-    setProgress(prog, p, p >= 1 ? "done" : "setting the limit… " + Math.round(p * 100) + "%");
+    setProgress(prog, p, p >= 1 ? "limit set" : "setting the limit… " + Math.round(p * 100) + "%");
     body.dataset.calibration = String(p);
     S.status.calibration = Object.assign(S.status.calibration || {}, m);
     dirty();
@@ -506,8 +506,10 @@
       S.limit = m.limit;
       let t = "Limit " + fmt(m.limit, 3);
       if (m.arl0) t += ": about " + intText(m.arl0) + (m.arl0_se ? " ± " + intText(m.arl0_se) : "") + " frames between false alarms";
-      if (m.note) t += ". " + m.note;
-      $("cal-result").textContent = t;
+      if (m.extrapolated) t += " (extrapolated)";
+      $("cal-result").textContent = t + ".";
+      $("cal-note").textContent = m.note || "";
+      $("cal-note-box").hidden = !m.note;
       dirtyChart();
     }
   }
@@ -965,7 +967,9 @@
     return best;
   }
   function chartX(f) { return chart.x0 + (f / chart.fmax) * (chart.x1 - chart.x0); }
-  function chartY(v) { return chart.y1 - (Math.min(v, chart.ymax) / chart.ymax) * (chart.y1 - chart.y0); }
+  // On the log scale the axis shows log10(1 + v), so 0 stays at the bottom.
+  function chartT(v) { return chart.log ? Math.log10(1 + Math.max(0, v)) : v; }
+  function chartY(v) { return chart.y1 - (Math.min(chartT(v), chartT(chart.ymax)) / chartT(chart.ymax)) * (chart.y1 - chart.y0); }
 
   function drawChart() {
     const c = $("chart");
@@ -983,7 +987,9 @@
     let gmax = 0;
     for (let i = 0; i < n; i++) if (S.g[i] > gmax && Number.isFinite(S.g[i])) gmax = S.g[i];
     const lim = S.limit || 0;
+    chart.log = $("chart-log").checked;
     chart.ymax = lim > 0 ? Math.max(lim * 1.4, Math.min(gmax, lim * 4)) * 1.05 : Math.max(gmax * 1.1, 1);
+    if (chart.log) chart.ymax = Math.max(gmax, lim, 1) * 1.5;
     ctx.font = (11 * dpr) + "px DejaVu Sans, sans-serif";
     // Learning reference period.
     const rf = (S.params && S.params.reference_frames) || 0;
@@ -1001,10 +1007,14 @@
     ctx.strokeStyle = "#d9d6cc"; ctx.lineWidth = 1; ctx.fillStyle = "#6a6f76";
     ctx.textAlign = "right"; ctx.textBaseline = "middle";
     const ys = niceStep(chart.ymax / 4);
-    for (let v = 0; v <= chart.ymax * 1.0001; v += ys) {
+    const ticks = [];
+    if (chart.log) { ticks.push(0); for (let v = 1; v <= chart.ymax; v *= 10) ticks.push(v); }
+    else for (let v = 0; v <= chart.ymax * 1.0001; v += ys) ticks.push(v);
+    for (const v of ticks) {
       const y = Math.round(chartY(v)) + 0.5;
       ctx.beginPath(); ctx.moveTo(chart.x0, y); ctx.lineTo(chart.x1, y); ctx.stroke();
-      ctx.fillText(ys < 1 ? v.toFixed(-Math.floor(Math.log10(ys))) : String(Math.round(v)), chart.x0 - 4 * dpr, y);
+      ctx.fillText(chart.log ? (v >= 1e4 ? v.toExponential(0) : String(v)) :
+        ys < 1 ? v.toFixed(-Math.floor(Math.log10(ys))) : String(Math.round(v)), chart.x0 - 4 * dpr, y);
     }
     ctx.textAlign = "center"; ctx.textBaseline = "top";
     const step = niceStep(chart.fmax / 6);
@@ -1041,6 +1051,10 @@
     }
     flush();
     ctx.stroke();
+    if (!chart.log && n > 10 && lim > 0 && gmax > 0 && gmax * 10 < lim) {
+      ctx.fillStyle = COLORS.g; ctx.textAlign = "right"; ctx.textBaseline = "top";
+      ctx.fillText("the statistic is far below the limit: tick \u201clog scale\u201d to see it", chart.x1 - 4 * dpr, chart.y0 + 2 * dpr);
+    }
     if (gmax > chart.ymax) {
       ctx.fillStyle = COLORS.g; ctx.textAlign = "right"; ctx.textBaseline = "top";
       ctx.fillText("statistic goes off the top, up to " + fmt(gmax, 0), chart.x1 - 4 * dpr, chart.y0 + 2 * dpr);
@@ -1074,6 +1088,7 @@
   function wireChart() {
     const c = $("chart");
     c.addEventListener("click", (ev) => pickFrame(frameFromChart(ev)));
+    $("chart-log").addEventListener("change", dirtyChart);
     c.addEventListener("mousemove", (ev) => {
       const f = frameFromChart(ev);
       const i = findFrame(f);
