@@ -91,6 +91,7 @@ func shot(t *testing.T, tab context.Context, name string) {
 	if dir == "" {
 		return
 	}
+	chromedp.Run(tab, chromedp.Evaluate[bool](`window.scrollTo(0, 0), true`))
 	png, err := chromedp.Run(tab, chromedp.CaptureScreenshot())
 	if err != nil {
 		t.Logf("screenshot %s: %v", name, err)
@@ -291,6 +292,14 @@ func TestWatchUploadShare(t *testing.T) {
 	if c := toInts(probe["far"]); near(c, regionRGB, 40) {
 		t.Errorf("canvas pixel away from the region is %v, the outline colour: the probe cannot tell", c)
 	}
+	// Zoom to pixels: one source pixel becomes 16 screen pixels, centred on the region.
+	eval[bool](t, tab, `document.getElementById("zoom-px").click(), true`)
+	scale := eval[float64](t, tab, `(() => { const a = sparsewatch.toCanvas(0, 0), b = sparsewatch.toCanvas(1, 0); return (b[0] - a[0]) / devicePixelRatio; })()`)
+	if scale != 16 {
+		t.Errorf("after \"pixels\" one source pixel spans %v screen pixels, want 16", scale)
+	}
+	shot(t, tab, "4a-zoom")
+	eval[bool](t, tab, `document.getElementById("zoom-fit").click(), true`)
 	// Chart: the alarm episode is shaded; a watched frame before it is not.
 	shade := eval[map[string]any](t, tab, fmt.Sprintf(`(() => {
 		const c = document.getElementById("chart"), ctx = c.getContext("2d");
