@@ -41,6 +41,7 @@ func (s *Server) routes() *echo.Echo {
 	// calibrate = new parameters (usually arl0) and a fresh review, whose
 	// calibration progress reaches the viewers as "calibration" messages.
 	e.POST("/api/sessions/:id/calibrate", s.handleParams)
+	e.POST("/api/sessions/:id/compare", s.handleCompare)
 	e.GET("/api/share/:token", s.handleShareLookup)
 	e.GET("/api/demos", func(c echo.Context) error {
 		return c.JSON(http.StatusOK, map[string]any{"demos": demoList()})
@@ -248,19 +249,20 @@ func (s *Server) cameraAllowed(u string) bool {
 
 func (s *Server) handleList(c echo.Context) error {
 	type item struct {
-		ID         string `json:"id"`
-		Name       string `json:"name"`
-		Source     string `json:"source"`
-		State      string `json:"state"`
-		FramesSeen int    `json:"frames_seen"`
-		Frame      int    `json:"frame"`
-		Alarms     int    `json:"alarms"`
-		Created    string `json:"created"`
+		ID          string `json:"id"`
+		Name        string `json:"name"`
+		Source      string `json:"source"`
+		State       string `json:"state"`
+		FramesSeen  int    `json:"frames_seen"`
+		FramesTotal int    `json:"frames_total"`
+		Frame       int    `json:"frame"`
+		Alarms      int    `json:"alarms"`
+		Created     string `json:"created"`
 	}
 	all := s.list()
 	out := make([]item, len(all))
 	for i, st := range all {
-		out[i] = item{st.ID, st.Name, st.Source, st.State, st.FramesSeen, st.Frame, st.Alarms, st.Created.Format("2006-01-02T15:04:05Z")}
+		out[i] = item{st.ID, st.Name, st.Source, st.State, st.FramesSeen, st.FramesTotal, st.Frame, st.Alarms, st.Created.Format("2006-01-02T15:04:05Z")}
 	}
 	return c.JSON(http.StatusOK, map[string]any{"sessions": out})
 }

@@ -81,8 +81,10 @@ func demoList() []map[string]any {
 	return out
 }
 
-// CreateDemo makes a session that reviews a demo scenario. Its reference
-// frames default to the scenario's suggestion.
+// CreateDemo makes a session that reviews a demo scenario. Parameters the
+// caller did not set (set lists those it did) take demo values that start
+// watching within seconds: the scenario's reference frames, 4 x 4 tiles,
+// a target of one false alarm in 2000 frames and 100 calibration paths.
 func (s *Server) CreateDemo(scenario, name string, p Params, set map[string]bool) (*Session, error) {
 	sc, err := lookupDemo(scenario)
 	if err != nil {
@@ -90,6 +92,15 @@ func (s *Server) CreateDemo(scenario, name string, p Params, set map[string]bool
 	}
 	if !set["reference_frames"] && sc.ReferenceFrames >= 2 {
 		p.ReferenceFrames = sc.ReferenceFrames
+	}
+	if !set["tile"] {
+		p.Tile = 4
+	}
+	if !set["arl0"] {
+		p.ARL0 = 2000
+	}
+	if !set["paths"] {
+		p.Paths = 100
 	}
 	if err := validateParams(p); err != nil {
 		return nil, err

@@ -53,6 +53,8 @@ type Server struct {
 	byShare  map[string]*Session
 	baseURL  string // scheme://host of the listener, for owner_url/share_url; "" = relative
 
+	compareSlot chan struct{} // one compare at a time
+
 	// review runs one session's frames; tests and the default loop set it.
 	review func(ctx context.Context, s *Session) (*Report, error)
 }
@@ -79,6 +81,7 @@ func New(opt Options) (*Server, error) {
 	s := &Server{
 		opt: opt, log: opt.Logger, ctx: ctx, stop: stop,
 		sessions: map[string]*Session{}, byShare: map[string]*Session{},
+		compareSlot: make(chan struct{}, 1),
 	}
 	s.review = defaultReview
 	s.echo = s.routes()

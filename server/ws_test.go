@@ -81,3 +81,35 @@ func TestWebsocketViewers(t *testing.T) {
 		})
 	}
 }
+
+// TestCompare runs the session's frames again for two more policies and
+// gets one report and statistic series per policy; a share token cannot.
+func TestCompare(t *testing.T) {
+	ts := mustServer(t, Options{})
+	files := synthFrames(t, 16, 12, 90, [][2]int{{70, 90}})
+	cr := ts.mustUpload(t, files, `{"budget":"20%","top_r":2,"reference_frames":60,"limit":20,"pace":0}`)
+	body := `{"policies":["random","full","random"]}`
+	if code, _ := ts.do(t, "POST", "/api/sessions/"+cr.ID+"/compare", cr.ShareToken, "application/json", strings.NewReader(body)); code != http.StatusForbidden {
+		t.Fatalf("compare with the share token: %d, want 403", code)
+	}
+	code, b := ts.do(t, "POST", "/api/sessions/"+cr.ID+"/compare", cr.OwnerToken, "application/json", strings.NewReader(body))
+	if code != http.StatusOK {
+		t.Fatalf("compare: %d %s", code, b)
+	}
+	var res struct{ Runs []compareRun }
+	if err := json.Unmarshal(b, &res); err != nil {
+		t.Fatal(err)
+	}
+	want := []string{"adaptive", "random", "full"}
+	if len(res.Runs) != len(want) {
+		t.Fatalf("%d runs, want %v", len(res.Runs), want)
+	}
+	for i, r := range res.Runs {
+		if r.Policy != want[i] || r.Report.Policy != want[i] || r.Report.Frames != 90 || len(r.G) != 30 || r.Frame[0] != 60 {
+			t.Fatalf("run %d: policy %s/%s, %d frames, %d points from %v", i, r.Policy, r.Report.Policy, r.Report.Frames, len(r.G), r.Frame[:1])
+		}
+	}
+	if res.Runs[2].Report.WatchPixelsRead != 30*16*12 {
+		t.Fatalf("full policy read %d pixels over 30 frames, want every pixel", res.Runs[2].Report.WatchPixelsRead)
+	}
+}
