@@ -83,8 +83,11 @@ func demoList() []map[string]any {
 
 // CreateDemo makes a session that reviews a demo scenario. Parameters the
 // caller did not set (set lists those it did) take demo values that start
-// watching within seconds: the scenario's reference frames, 4 x 4 tiles,
-// a target of one false alarm in 2000 frames and 100 calibration paths.
+// watching within half a minute and find the change: the scenario's
+// reference frames, 4 x 4 tiles, design shift 2 (a stream's reference is
+// estimated from few frames, and a shift of 1 lets streams with an
+// estimation bias over half a sigma climb for ever), a target of one false
+// alarm in 2000 frames and 100 calibration paths.
 func (s *Server) CreateDemo(scenario, name string, p Params, set map[string]bool) (*Session, error) {
 	sc, err := lookupDemo(scenario)
 	if err != nil {
@@ -95,6 +98,9 @@ func (s *Server) CreateDemo(scenario, name string, p Params, set map[string]bool
 	}
 	if !set["tile"] {
 		p.Tile = 4
+	}
+	if !set["shift"] {
+		p.Shift = 2
 	}
 	if !set["arl0"] {
 		p.ARL0 = 2000
