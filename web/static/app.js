@@ -1151,6 +1151,11 @@
 
   function fillSettings(p) {
     if (!p) return;
+    if (document.activeElement !== field("calibration")) {
+      field("calibration").value = p.limit > 0 ? "fixed" : (p.calibration || "estimated");
+      if (p.limit > 0) field("limit").value = p.limit;
+      field("limit").disabled = !(p.limit > 0) || S.role !== "owner";
+    }
     for (const k of ["budget", "policy", "top_r", "shift", "compensation", "tile", "reference_frames", "model", "arl0", "pace"]) {
       const el = field(k);
       if (el && p[k] !== undefined && document.activeElement !== el) el.value = p[k];
@@ -1192,12 +1197,22 @@
     }
     const a = targetFrames();
     if (Number.isFinite(a) && a > 0) p.arl0 = a;
+    // A fixed limit skips calibration; 0 asks for calibration again.
+    const how = field("calibration").value;
+    if (how === "fixed") {
+      const h = parseFloat(field("limit").value);
+      if (h > 0) p.limit = h;
+    } else {
+      p.calibration = how;
+      p.limit = 0;
+    }
     return p;
   }
 
   function wireSettings() {
     const form = $("settings");
     form.addEventListener("input", showTarget);
+    field("calibration").addEventListener("change", () => { field("limit").disabled = field("calibration").value !== "fixed"; });
     form.addEventListener("change", showTarget);
     form.addEventListener("submit", async (e) => {
       e.preventDefault();
@@ -1224,7 +1239,7 @@
         // The server sets the limit when a run starts: changing only the
         // target starts a new run, which calibrates first.
         if (!(a > 0)) throw new Error("give a positive false-alarm target");
-        const st = await api("POST", "/api/sessions/" + encodeURIComponent(S.id) + "/calibrate", { arl0: a }, S.token);
+        const st = await api("POST", "/api/sessions/" + encodeURIComponent(S.id) + "/calibrate", { arl0: a, limit: 0, calibration: field("calibration").value === "fixed" ? "estimated" : field("calibration").value }, S.token);
         resetHistory();
         if (st && typeof st === "object") onStatus(st);
         $("settings-msg").textContent = "New target sent; the limit is being set, then the review starts again.";
