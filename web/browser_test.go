@@ -92,7 +92,11 @@ func shot(t *testing.T, tab context.Context, name string) {
 		return
 	}
 	chromedp.Run(tab, chromedp.Evaluate[bool](`window.scrollTo(0, 0), true`))
-	png, err := chromedp.Run(tab, chromedp.CaptureScreenshot())
+	capture := chromedp.CaptureScreenshot()
+	if strings.HasSuffix(name, "-page") {
+		capture = chromedp.FullScreenshot(100) // the whole page, PNG
+	}
+	png, err := chromedp.Run(tab, capture)
 	if err != nil {
 		t.Logf("screenshot %s: %v", name, err)
 		return
@@ -361,8 +365,10 @@ func TestWatchUploadShare(t *testing.T) {
 		t.Errorf("viewer lists the first alarm at frame %d, owner at %d", vAlarm, alarmFrame)
 	}
 	shot(t, viewer, "5-share-alarm")
+	shot(t, viewer, "5-share-alarm-page")
 	poll[bool](t, tab, "the end of the review", `document.body.dataset.state === "finished"`, 30*time.Second)
 	shot(t, tab, "6-finished")
+	shot(t, tab, "6-finished-page")
 
 	// The owner's controls work: a new budget is applied and the review
 	// starts again from frame 0 with it.
@@ -380,6 +386,16 @@ func TestWatchUploadShare(t *testing.T) {
 		t.Errorf("after Apply the session's budget is %q (%v), want 20%%", budget, err)
 	}
 	poll[bool](t, tab, "the review to start again", `document.body.dataset.state !== "finished" && +document.body.dataset.frame < 279`, 10*time.Second)
+
+	// Back on the start page, the session is listed with its owner link
+	// (kept in this browser), and the demo scenes are offered.
+	id := eval[string](t, tab, `document.body.dataset.session`)
+	if err := chromedp.Do(tab, chromedp.Navigate(ts.URL+"/")); err != nil {
+		t.Fatal(err)
+	}
+	poll[bool](t, tab, "the session in the list", fmt.Sprintf(`!!document.querySelector("#sessions a[href*='/watch/%s']")`, id), 5*time.Second)
+	poll[bool](t, tab, "the demo scenes", `document.getElementById("demo-scenario").options.length > 0`, 5*time.Second)
+	shot(t, tab, "7-start-again")
 }
 
 // Colours the page draws with (style.css / app.js COLORS).
