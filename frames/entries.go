@@ -180,6 +180,7 @@ func (s *entrySource) startCube(name string, r io.ReaderAt, c io.Closer, size in
 		}
 		return s.item(name, err)
 	}
+	f.MergeGap = s.opts.FITSMergeGap
 	s.cube, s.cubeFile, s.cubeName, s.cubePlane, s.cubeFree = f, c, name, 0, free
 	return s.planeItem(f.HeaderBytes())
 }

@@ -102,6 +102,9 @@ func (g *sizeGate) check(w, h int) error {
 type Options struct {
 	MaxPixels    int64 // largest frame, in pixels (0 = DefaultMaxPixels)
 	MaxFileBytes int64 // largest file or archive entry (0 = DefaultMaxFileBytes)
+	// FITSMergeGap lets FITS pixel reads run through gaps of up to this
+	// many bytes (fewer reads, more bytes); 0 reads exactly the pixels asked.
+	FITSMergeGap int
 }
 
 // DefaultMaxFileBytes is the default largest frame file: 1 GiB.

@@ -419,3 +419,23 @@ func TestSynthetic(t *testing.T) {
 		t.Error("Render is not repeatable")
 	}
 }
+
+func TestPrefetchSameItems(t *testing.T) {
+	dir := t.TempDir()
+	cases := badInputs(t)
+	for _, tc := range cases {
+		os.WriteFile(filepath.Join(dir, tc.file), tc.data, 0o644)
+	}
+	src, _, err := OpenFolder(dir, Options{})
+	if err != nil {
+		t.Fatal(err)
+	}
+	checkItems(t, drain(t, Prefetch(src, 2)), cases)
+	// Closing early stops the read-ahead goroutine without a hang.
+	src2, _, _ := OpenFolder(dir, Options{})
+	p := Prefetch(src2, 3)
+	p.Next()
+	if err := p.Close(); err != nil {
+		t.Fatal(err)
+	}
+}

@@ -74,6 +74,8 @@ func runScan(ctx context.Context, env Env, args []string) error {
 	if err != nil {
 		return err
 	}
+	// Decode the next frames in a second goroutine while the engines work.
+	src = frames.Prefetch(src, 2)
 	defer src.Close()
 
 	var stats *csv.Writer

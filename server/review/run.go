@@ -234,7 +234,11 @@ func (rv *reviewer) calibrate(ctx context.Context) error {
 		}
 		rv.refStack = nil
 	}
-	if rv.p.Calibration == "" || rv.p.Calibration == "estimated" {
+	needCal := false
+	for _, r := range rv.runs {
+		needCal = needCal || r.p.Limit <= 0
+	}
+	if needCal && (rv.p.Calibration == "" || rv.p.Calibration == "estimated") {
 		b := estimatedFrameCount
 		for b > 16 && int64(b)*int64(m) > 1<<26 {
 			b /= 2
