@@ -213,6 +213,17 @@ func TestWatchUploadShare(t *testing.T) {
 		f.querySelector("[name=tile]").value = 2;
 		f.querySelector("[name=pace]").value = 30;
 		return true; })()`, testRef))
+	// Files dropped on the drop area are picked too (a synthetic drop of
+	// two small files; the file input below replaces them).
+	dropped, err := chromedp.Run(tab, chromedp.Evaluate[string](`(() => {
+		const dt = new DataTransfer();
+		dt.items.add(new File(["a"], "a1.png", {type: "image/png"}));
+		dt.items.add(new File(["bb"], "a2.png", {type: "image/png"}));
+		document.getElementById("drop").dispatchEvent(new DragEvent("drop", {dataTransfer: dt, bubbles: true, cancelable: true}));
+		return new Promise((ok) => setTimeout(() => ok(document.body.dataset.picked), 100)); })()`, chromedp.EvalAwaitPromise))
+	if err != nil || dropped != "2" {
+		t.Errorf("after dropping 2 files the page has %q picked (%v)", dropped, err)
+	}
 	if err := chromedp.Do(tab, chromedp.SetUploadFiles(chromedp.CSS("#files"), paths)); err != nil {
 		t.Fatal(err)
 	}
