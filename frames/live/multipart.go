@@ -53,7 +53,6 @@ type PartReader struct {
 	started bool
 	pending bool // a counted body was read; its delimiter line is next
 	done    bool
-	longest int // longest delimiter
 }
 
 // Part is one body part.
@@ -69,9 +68,7 @@ func NewPartReader(r io.Reader, boundary string, maxPart int) *PartReader {
 	if strings.HasPrefix(boundary, "--") {
 		p.delims = append(p.delims, []byte(boundary))
 	}
-	for _, d := range p.delims {
-		p.longest = max(p.longest, len(d))
-	}
+	// The RFC form ("--" + boundary) is tried first.
 	return p
 }
 
@@ -131,42 +128,52 @@ func unexpected(err error) error {
 }
 
 // atDelimiter reports whether the reader is at a delimiter and consumes
-// the delimiter line when it is; close reports a close delimiter.
+// the delimiter line when it is; closing reports a close delimiter (or a
+// delimiter at the very end of the stream). It peeks only as many bytes as
+// a delimiter has, so a camera that pauses right after a delimiter line
+// does not hold back the part before it.
 func (p *PartReader) atDelimiter() (found, closing bool, err error) {
-	peek, perr := p.r.Peek(p.longest + 2)
 	for _, d := range p.delims {
-		if !bytes.HasPrefix(peek, d) {
+		peek, perr := p.r.Peek(len(d))
+		if !bytes.Equal(peek, d) {
+			if perr != nil && len(peek) == 0 {
+				return false, false, perr
+			}
 			continue
 		}
-		rest := peek[len(d):]
-		closing = bytes.HasPrefix(rest, []byte("--"))
-		// Consume the rest of the delimiter line (transport padding).
 		if _, err := p.r.Discard(len(d)); err != nil {
 			return false, false, unexpected(err)
 		}
-		if err := p.skipLine(); err != nil && !(errors.Is(err, io.EOF) && closing) {
+		rest, err := p.readLine()
+		switch {
+		case errors.Is(err, io.EOF):
+			return true, true, nil
+		case err != nil:
 			return false, false, err
 		}
-		return true, closing, nil
-	}
-	if perr != nil && len(peek) == 0 {
-		return false, false, perr
+		return true, bytes.HasPrefix(rest, []byte("--")), nil
 	}
 	return false, false, nil
 }
 
-func (p *PartReader) skipLine() error {
+// readLine consumes the rest of the current line (a delimiter's transport
+// padding, or its closing "--") and returns its first two bytes.
+func (p *PartReader) readLine() ([]byte, error) {
+	var head []byte
 	for n := 0; ; {
 		b, err := p.r.ReadSlice('\n')
 		n += len(b)
+		if len(head) < 2 {
+			head = append(head, b[:min(len(b), 2-len(head))]...)
+		}
 		if err == nil {
-			return nil
+			return head, nil
 		}
 		if !errors.Is(err, bufio.ErrBufferFull) {
-			return err
+			return head, err
 		}
 		if n > maxHeaderLine {
-			return errors.New("frames: multipart delimiter line too long")
+			return nil, errors.New("frames: multipart delimiter line too long")
 		}
 	}
 }

@@ -7,6 +7,7 @@ import (
 	"io"
 	"strings"
 	"testing"
+	"time"
 )
 
 // readAll collects every part body and the error that ended the stream.
@@ -171,4 +172,30 @@ func FuzzPartRoundTrip(f *testing.F) {
 			t.Fatalf("parts %q, want %q", got, parts)
 		}
 	})
+}
+
+// TestPartReaderNoLookaheadWait: a camera that pauses right after a
+// delimiter line (LF only, no Content-Length) must not hold back the part
+// before it until the next frame comes.
+func TestPartReaderNoLookaheadWait(t *testing.T) {
+	pr, pw := io.Pipe()
+	defer pw.Close()
+	go pw.Write([]byte("--b\r\n\r\nabc\r\n--b\n"))
+	got := make(chan string, 1)
+	go func() {
+		p, err := NewPartReader(pr, "b", 100).Next()
+		if err != nil {
+			got <- err.Error()
+			return
+		}
+		got <- string(p.Body)
+	}()
+	select {
+	case s := <-got:
+		if s != "abc" {
+			t.Errorf("part %q, want abc", s)
+		}
+	case <-time.After(5 * time.Second):
+		t.Fatal("the part was held back waiting for more bytes")
+	}
 }
