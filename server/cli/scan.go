@@ -204,9 +204,18 @@ func writeJSON(stdout io.Writer, path string, v any) error {
 		return err
 	}
 	if f, ok := w.(*os.File); ok && path != "" {
-		return f.Sync()
+		return syncRegular(f)
 	}
 	return nil
+}
+
+// syncRegular flushes a regular file to disk; devices and pipes (such as
+// /dev/null) cannot be synced and need not be.
+func syncRegular(f *os.File) error {
+	if st, err := f.Stat(); err != nil || !st.Mode().IsRegular() {
+		return nil
+	}
+	return f.Sync()
 }
 
 // writeAlarms writes every run's alarms as CSV (one row per alarm, its
@@ -257,7 +266,7 @@ func writeAlarms(path string, reps []review.Report) error {
 	if err := bw.Flush(); err != nil {
 		return err
 	}
-	return f.Sync()
+	return syncRegular(f)
 }
 
 func ff(v float64) string { return strconv.FormatFloat(v, 'f', 2, 64) }
@@ -420,8 +429,10 @@ func (p *scanProgress) frame(index int) {
 	if p.total > 0 {
 		line += fmt.Sprintf("/%d", p.total)
 	}
-	line += fmt.Sprintf(", %.1f frames/s", rate)
-	if p.total > 0 && rate > 0 {
+	if p.frames > 1 && rate > 0 {
+		line += fmt.Sprintf(", %.1f frames/s", rate)
+	}
+	if p.total > 0 && p.frames > 1 && rate > 0 {
 		eta := time.Duration(float64(p.total-index-1) / rate * float64(time.Second)).Round(time.Second)
 		line += fmt.Sprintf(", ETA %s", eta)
 	}
