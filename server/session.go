@@ -92,6 +92,8 @@ type Session struct {
 	hub *hub
 	log *slog.Logger
 
+	ctl sync.Mutex // serialises parameter changes (stop, archive, start)
+
 	mu            sync.Mutex // guards the fields below
 	meta          meta
 	st            Status
@@ -648,6 +650,11 @@ func (s *Session) hello(v *viewer, register bool) ([]byte, error) {
 // setParams restarts the review with new parameters; the previous run's
 // logs are archived under runs/<n>/.
 func (s *Session) setParams(ctx context.Context, p Params) error {
+	s.ctl.Lock()
+	defer s.ctl.Unlock()
+	if ctx.Err() != nil {
+		return errorf(KindUnavailable, "the server is stopping")
+	}
 	s.stop()
 	s.mu.Lock()
 	m := s.meta
