@@ -7,4 +7,17 @@
 // when the queue is full its oldest frame is dropped and counted, so the
 // consumer always sees the freshest frames. A watched folder waits instead,
 // because its files stay on disk, unless told to drop.
+//
+// Use:
+//
+//	allow, err := live.NewAllowList(prefixes...)   // e.g. from --allow-camera-url
+//	cam, err := live.NewCamera(live.CameraConfig{URL: u, Allow: allow, Events: onEvent})
+//	// a URL outside the list gives a *live.RefusedError before any fetch
+//	go cam.Run(ctx)                                // returns *RefusedError on a bad redirect
+//	for f := range cam.Frames() {                  // closed when Run returns
+//		frames.Decode(f.Data, maxPixels, dst)
+//	}
+//	cam.Counts()                                   // received, queued, dropped, bad, reconnects
+//
+// NewFolder and Folder.Run work the same way for a folder inside a root.
 package live
