@@ -1,0 +1,113 @@
+package server
+
+import (
+	"archive/zip"
+	"bytes"
+	"encoding/binary"
+	"os"
+	"path/filepath"
+	"strings"
+	"testing"
+	"time"
+
+	"github.com/gorilla/websocket"
+)
+
+// TestTornLogsRepaired: a crash can leave half a line at the end of
+// stats.csv or alarms.jsonl; reading drops it and truncates the file so
+// appending goes on cleanly.
+func TestTornLogsRepaired(t *testing.T) {
+	dir := t.TempDir()
+	st, err := openStatsLog(dir)
+	if err != nil {
+		t.Fatal(err)
+	}
+	for f := 0; f < 3; f++ {
+		st.append(statsRow{Frame: f, G: float64(f) / 2, Limit: 9, PixelsRead: 7})
+	}
+	st.f.WriteString("3,1.5,9") // torn
+	st.close()
+	rows, err := readStats(dir)
+	if err != nil || len(rows) != 3 || rows[2] != (statsRow{2, 1, 9, 7}) {
+		t.Fatalf("rows %+v err %v", rows, err)
+	}
+	data, _ := os.ReadFile(filepath.Join(dir, statsFileName))
+	if !strings.HasSuffix(string(data), "2,1,9,7\n") || !strings.HasPrefix(string(data), statsHeader) {
+		t.Fatalf("stats.csv after repair: %q", data)
+	}
+
+	al, err := openAlarmLog(dir)
+	if err != nil {
+		t.Fatal(err)
+	}
+	al.append(alarmEvent{Event: "start", Alarm: reportAlarm{Frame: 5, EndFrame: -1}})
+	al.f.WriteString(`{"event":"end","ala`)
+	al.close()
+	evs, err := readAlarmEvents(dir)
+	if err != nil || len(evs) != 1 || evs[0].Alarm.Frame != 5 {
+		t.Fatalf("events %+v err %v", evs, err)
+	}
+	al, _ = openAlarmLog(dir)
+	al.append(alarmEvent{Event: "end", Alarm: reportAlarm{Frame: 5, EndFrame: 9}})
+	al.close()
+	if evs, _ = readAlarmEvents(dir); len(evs) != 2 || evs[1].Alarm.EndFrame != 9 {
+		t.Fatalf("after appending to the repaired log: %+v", evs)
+	}
+}
+
+// TestZipUploadRefusesEscapes: a .zip whose entry climbs out of its
+// folder gets that entry listed as an error; the other frames are reviewed.
+func TestZipUploadRefusesEscapes(t *testing.T) {
+	var buf bytes.Buffer
+	zw := zip.NewWriter(&buf)
+	for i, f := range synthFrames(t, 16, 12, 70, nil) {
+		name := "clip/" + f.name
+		if i == 65 {
+			name = "../" + f.name
+		}
+		w, _ := zw.Create(name)
+		w.Write(f.data)
+	}
+	zw.Close()
+	ts := mustServer(t, Options{})
+	cr := ts.mustUpload(t, []upFile{{"clip.zip", buf.Bytes()}}, `{"budget":"20%","top_r":2,"reference_frames":50,"limit":50,"pace":0}`)
+	rep := waitReport(t, ts.Server, cr.ID)
+	if rep.Frames != 69 || len(rep.Errors) != 1 || !strings.Contains(rep.Errors[0].File, "..") {
+		t.Fatalf("frames %d, errors %+v; want 69 frames and the escaping entry listed", rep.Frames, rep.Errors)
+	}
+}
+
+// TestSeekSendsPreview: the owner's seek message brings a preview of that
+// frame; a share viewer's seek is ignored.
+func TestSeekSendsPreview(t *testing.T) {
+	ts := mustServer(t, Options{})
+	cr := ts.mustUpload(t, synthFrames(t, 16, 12, 60, nil), `{"budget":"20%","top_r":2,"reference_frames":50,"limit":50,"pace":0}`)
+	waitReport(t, ts.Server, cr.ID)
+	for _, c := range []struct {
+		tok  string
+		want bool
+	}{{cr.ShareToken, false}, {cr.OwnerToken, true}} {
+		conn, _, err := dialWS(t, ts, cr.ID, c.tok, nil)
+		if err != nil {
+			t.Fatal(err)
+		}
+		conn.ReadMessage() // hello
+		conn.WriteMessage(websocket.TextMessage, []byte(`{"type":"seek","frame":7}`))
+		conn.SetReadDeadline(time.Now().Add(2 * time.Second))
+		got := false
+		for {
+			kind, msg, err := conn.ReadMessage()
+			if err != nil {
+				break
+			}
+			if kind == websocket.BinaryMessage && msg[0] == msgPreview && binary.LittleEndian.Uint32(msg[4:]) == 7 {
+				got = true
+				break
+			}
+		}
+		conn.Close()
+		if got != c.want {
+			t.Fatalf("seek with the %s token: preview %v, want %v", map[bool]string{true: "owner", false: "share"}[c.want], got, c.want)
+		}
+	}
+}
