@@ -96,6 +96,7 @@ func defaultReview(ctx context.Context, s *Session) (*Report, error) {
 		return nil, err
 	}
 	defer src.Close()
+	s.setTotal(src.Len())
 	rp := reviewParams(m.Params)
 	cached, haveCached := loadCalibration(s.dir, rp)
 	if haveCached && rp.Limit <= 0 {

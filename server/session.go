@@ -532,6 +532,13 @@ func (s *Session) next(ctx context.Context, replay bool) error {
 	return s.pace(ctx)
 }
 
+// setTotal records how many frames the source expects (-1 unknown).
+func (s *Session) setTotal(n int) {
+	s.mu.Lock()
+	s.st.FramesTotal = max(n, 0)
+	s.mu.Unlock()
+}
+
 // setReference reports reference learning progress (at most a few
 // status messages a second).
 func (s *Session) setReference(done, total int) {
