@@ -29,6 +29,14 @@ func (s *Server) routes() *echo.Echo {
 	e := echo.New()
 	e.HideBanner, e.HidePort = true, true
 	e.HTTPErrorHandler = s.httpError
+	e.Use(func(next echo.HandlerFunc) echo.HandlerFunc {
+		return func(c echo.Context) error {
+			h := c.Response().Header()
+			h.Set("X-Content-Type-Options", "nosniff")
+			h.Set("X-Frame-Options", "DENY")
+			return next(c)
+		}
+	})
 
 	e.POST("/api/sessions", s.handleCreate)
 	e.GET("/api/sessions", s.handleList)
