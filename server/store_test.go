@@ -111,3 +111,20 @@ func TestSeekSendsPreview(t *testing.T) {
 		}
 	}
 }
+
+// TestFrameOverPixelLimit: frames over MaxPixels are refused one by one
+// (listed with the reason); with no good frame left the session fails with
+// a message that says so.
+func TestFrameOverPixelLimit(t *testing.T) {
+	ts := mustServer(t, Options{MaxPixels: 100})
+	cr := ts.mustUpload(t, synthFrames(t, 16, 12, 5, nil), `{"reference_frames":2,"limit":5,"pace":0}`)
+	sess, _ := ts.session(cr.ID)
+	var st Status
+	waitFor(t, "the session to fail", 20*time.Second, func() bool {
+		st = sess.Status()
+		return st.State == StateFailed
+	})
+	if len(st.Errors) != 5 || !strings.Contains(st.Errors[0].Message, "100") || st.Message == "" || st.Message == "review failed" {
+		t.Fatalf("errors %+v, message %q", st.Errors, st.Message)
+	}
+}
