@@ -227,6 +227,8 @@
     if (a > 0) p.arl0 = a;
     const pace = parseFloat(f.querySelector("[name=pace]").value);
     if (pace >= 0) p.pace = pace;
+    const limit = parseFloat(f.querySelector("[name=limit]").value);
+    if (limit > 0) p.limit = limit;
     return p;
   }
 
