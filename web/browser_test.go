@@ -391,6 +391,18 @@ func TestWatchUploadShare(t *testing.T) {
 	shot(t, viewer, "5-share-alarm-page")
 	poll[bool](t, tab, "the end of the review", `document.body.dataset.state === "finished"`, 30*time.Second)
 	shot(t, tab, "6-finished")
+	// After the review, clicking the chart asks the server for that frame
+	// (seek) and its picture is shown.
+	xy = eval[[]float64](t, tab, fmt.Sprintf(`(() => { const r = document.getElementById("chart").getBoundingClientRect();
+		return [r.left + sparsewatch.chartX(%d) / devicePixelRatio + 0.5, r.top + r.height / 2]; })()`, changeFrame-20))
+	if err := chromedp.Do(tab, chromedp.MouseClickXY(xy[0], xy[1])); err != nil {
+		t.Fatal(err)
+	}
+	pickedFrame := poll[int](t, tab, "the picked frame", `document.body.dataset.picked !== undefined && +document.body.dataset.picked`, 3*time.Second)
+	if d := pickedFrame - (changeFrame - 20); d < -1 || d > 1 {
+		t.Errorf("clicked the chart at frame %d, the page picked %d", changeFrame-20, pickedFrame)
+	}
+	poll[bool](t, tab, "the picked frame's picture", fmt.Sprintf(`document.body.dataset.preview === "%d"`, pickedFrame), 5*time.Second)
 	shot(t, tab, "6-finished-page")
 
 	// The owner's controls work: a new budget is applied and the review
