@@ -405,6 +405,20 @@ func TestWatchUploadShare(t *testing.T) {
 	poll[bool](t, tab, "the picked frame's picture", fmt.Sprintf(`document.body.dataset.preview === "%d"`, pickedFrame), 5*time.Second)
 	shot(t, tab, "6-finished-page")
 
+	// Compare: the same frames with the random policy, shown beside this
+	// session's own run, each with its statistic drawn.
+	eval[bool](t, tab, `(() => { for (const cb of document.querySelectorAll("#compare-policies input")) cb.checked = cb.value === "random";
+		document.getElementById("compare").click(); return true; })()`)
+	runs := poll[int](t, tab, "the compare runs", `+document.body.dataset.compareRuns || 0`, 60*time.Second)
+	cards := eval[[]string](t, tab, `Array.from(document.querySelectorAll("#compare-out .run h3")).map((h) => h.textContent)`)
+	drawn := eval[int](t, tab, `Array.from(document.querySelectorAll("#compare-out canvas")).filter((c) => {
+		const d = c.getContext("2d").getImageData(0, 0, c.width, c.height).data;
+		for (let i = 3; i < d.length; i += 4) if (d[i] > 0) return true;
+		return false; }).length`)
+	if runs != 2 || len(cards) != 2 || cards[0] != "adaptive" || cards[1] != "random" || drawn != 2 {
+		t.Errorf("compare shows %d runs, cards %v, %d charts drawn; want adaptive and random, both drawn", runs, cards, drawn)
+	}
+	shot(t, tab, "6b-compare-page")
 	// The owner's controls work: a new budget is applied and the review
 	// starts again from frame 0 with it.
 	eval[bool](t, tab, `(() => { document.querySelector("#settings [name=budget]").value = "20%";

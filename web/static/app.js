@@ -769,6 +769,12 @@
     const ctx = c.getContext("2d");
     drawScene(ctx, w, h, view.zoom, view.px, view.py, view.dpr);
     body.dataset.drawn = String(S.cur ? S.cur.frame : -1);
+    // Say when the picture is of another frame than the read pixels.
+    const note = $("view-note");
+    const off = S.cur && S.preview && S.previewFrame !== S.cur.frame &&
+      (S.previewFrame === S.picked || Math.abs(S.previewFrame - S.cur.frame) > 50);
+    note.textContent = off ? "Picture of frame " + S.previewFrame + (S.previewFrame === S.picked ? " (picked on the chart)" : "") +
+      "; read pixels and live regions are those of frame " + S.cur.frame + "." : "";
     // What this drawing outlined, so a test can find the outline's pixels.
     body.dataset.drawnRegions = JSON.stringify(S.cur && $("show-regions").checked ?
       S.cur.regions.map((r) => [r.x0, r.y0, r.x1, r.y1]) : []);
@@ -1274,8 +1280,8 @@
       $("compare").disabled = true;
       try {
         const r = await api("POST", "/api/sessions/" + encodeURIComponent(S.id) + "/compare", { policies: pols }, S.token);
-        setProgress(prog, 1, "done");
         showCompare(r);
+        setProgress(prog, 1, "done: " + ($("compare-out").querySelectorAll(".run").length) + " runs on the same frames");
       } catch (err) {
         setProgress(prog, 0, "failed");
         out.textContent = err.status === 404 || err.status === 405 ?
@@ -1304,7 +1310,7 @@
       const first = alarms.length ? alarms[0].frame : null;
       const lines = [
         (Array.isArray(alarms) ? alarms.length : alarms) + (alarms.length === 1 ? " alarm" : " alarms"),
-        "first at frame " + (first === null ? "–" : first),
+        "first alarm at frame " + (first === null ? "–" : first),
         rep.pixels_read !== undefined ? intText(rep.pixels_read) + " pixels read" : "",
         rep.control_limit !== undefined ? "limit " + fmt(rep.control_limit) : "",
       ];
