@@ -128,3 +128,30 @@ func TestFrameOverPixelLimit(t *testing.T) {
 		t.Fatalf("errors %+v, message %q", st.Errors, st.Message)
 	}
 }
+
+// TestParamsChangeKeepsOldRun: a parameter change restarts the review and
+// moves the finished run's logs to runs/0/ instead of losing them.
+func TestParamsChangeKeepsOldRun(t *testing.T) {
+	ts := mustServer(t, Options{})
+	cr := ts.mustUpload(t, synthFrames(t, 16, 12, 70, [][2]int{{55, 70}}), `{"budget":"20%","top_r":2,"reference_frames":50,"limit":8,"pace":0}`)
+	first := waitReport(t, ts.Server, cr.ID)
+	if len(first.Alarms) == 0 {
+		t.Fatal("the first run should alarm at limit 8")
+	}
+	code, b := ts.do(t, "PATCH", "/api/sessions/"+cr.ID+"/params", cr.OwnerToken, "application/json", strings.NewReader(`{"limit":1e6}`))
+	if code != 200 {
+		t.Fatalf("PATCH: %d %s", code, b)
+	}
+	second := waitReport(t, ts.Server, cr.ID)
+	if len(second.Alarms) != 0 || second.ControlLimit != 1e6 {
+		t.Fatalf("second run: limit %v, %d alarms", second.ControlLimit, len(second.Alarms))
+	}
+	sess, _ := ts.session(cr.ID)
+	old, err := readAlarmEvents(filepath.Join(sess.dir, "runs", "0"))
+	if err != nil || len(old) == 0 || old[0].Alarm.Frame != first.Alarms[0].Frame {
+		t.Fatalf("first run's alarms in runs/0: %+v (%v)", old, err)
+	}
+	if cur, _ := readAlarmEvents(sess.dir); len(cur) != 0 {
+		t.Fatalf("current alarms.jsonl holds %d events of the old run", len(cur))
+	}
+}
