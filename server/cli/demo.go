@@ -70,6 +70,9 @@ func runDemo(ctx context.Context, env Env, args []string) error {
 		return err
 	}
 	t := s.Truth()
+	if s.Frames <= t.ChangeFrame {
+		fmt.Fprintf(env.Stderr, "demo %s: note: the run ends before the change at frame %d, so it has none\n", s.Name, t.ChangeFrame)
+	}
 	fmt.Fprintf(env.Stderr, "demo %s: wrote %d frames and truth.json to %s (change at frame %d near (%g, %g))\n",
 		s.Name, s.Frames, filepath.Clean(dir), t.ChangeFrame, t.Centre[0], t.Centre[1])
 	return nil
