@@ -3,6 +3,7 @@ package web_test
 import (
 	"bytes"
 	"context"
+	"encoding/binary"
 	"fmt"
 	"image"
 	"image/color"
@@ -214,6 +215,7 @@ func TestWatchUploadShare(t *testing.T) {
 	}
 	poll[bool](t, tab, "the start page", `document.body.dataset.state === "home"`, 5*time.Second)
 	shot(t, tab, "1-start")
+	checkFrameDecoding(t, tab)
 	// Settings for the new session, then the files.
 	eval[bool](t, tab, fmt.Sprintf(`(() => {
 		const f = document.getElementById("new-settings");
@@ -484,4 +486,80 @@ func countNear(v any, want []int, tol int) int {
 		}
 	}
 	return n
+}
+
+// frameMsg builds a kind-1 frame update by the layout in DEVELOPERS.md
+// ("Websocket protocol"), independently of the server's encoder.
+func frameMsg(enc byte, scale, frame, mw, mh int, g, limit float32, cells []int, box [4]uint16, peak float32) []byte {
+	var mask []byte
+	if enc == 0 {
+		mask = make([]byte, (mw*mh+7)/8)
+		for _, c := range cells {
+			mask[c>>3] |= 1 << (c & 7)
+		}
+	} else {
+		prev := 0
+		for _, c := range cells {
+			mask = binary.AppendUvarint(mask, uint64(c-prev))
+			prev = c
+		}
+	}
+	le := binary.LittleEndian
+	b := []byte{1, 2}
+	b = le.AppendUint16(b, uint16(scale))
+	b = le.AppendUint32(b, uint32(frame))
+	b = le.AppendUint32(b, math.Float32bits(g))
+	b = le.AppendUint32(b, math.Float32bits(limit))
+	b = le.AppendUint16(b, uint16(mw))
+	b = le.AppendUint16(b, uint16(mh))
+	b = append(b, enc)
+	b = le.AppendUint32(b, uint32(len(mask)))
+	b = append(b, mask...)
+	b = le.AppendUint16(b, 1)
+	for _, v := range box {
+		b = le.AppendUint16(b, v)
+	}
+	return le.AppendUint32(b, math.Float32bits(peak))
+}
+
+// checkFrameDecoding feeds the page's decoder both mask encodings, with
+// cell gaps that need one, two and three varint bytes, and a cut message.
+func checkFrameDecoding(t *testing.T, tab context.Context) {
+	t.Helper()
+	cells := []int{0, 5, 130, 20000, 59999}
+	box := [4]uint16{7, 8, 300, 9}
+	for _, enc := range []byte{0, 1} {
+		msg := frameMsg(enc, 4, 123456, 300, 200, 3.5, 12.25, cells, box, 2.5)
+		got := eval[map[string]any](t, tab, fmt.Sprintf(`sparsewatch.decode(%s)`, jsBytes(msg)))
+		want := map[string]any{"state": 2.0, "scale": 4.0, "frame": 123456.0, "g": 3.5, "limit": 12.25, "mw": 300.0, "mh": 200.0}
+		for k, w := range want {
+			if got[k] != w {
+				t.Errorf("mask encoding %d: decoded %s = %v, want %v", enc, k, got[k], w)
+			}
+		}
+		if c := toInts(got["cells"]); fmt.Sprint(c) != fmt.Sprint(cells) {
+			t.Errorf("mask encoding %d: decoded cells %v, want %v", enc, c, cells)
+		}
+		regs, _ := got["regions"].([]any)
+		if len(regs) != 1 || fmt.Sprint(regs[0]) != "map[peak:2.5 x0:7 x1:300 y0:8 y1:9]" {
+			t.Errorf("mask encoding %d: decoded regions %v", enc, regs)
+		}
+		cut := msg[:len(msg)-5]
+		if _, err := chromedp.Run(tab, chromedp.Evaluate[map[string]any](fmt.Sprintf(`sparsewatch.decode(%s)`, jsBytes(cut)))); err == nil {
+			t.Errorf("mask encoding %d: a message cut short decoded without an error", enc)
+		}
+	}
+}
+
+func jsBytes(b []byte) string {
+	var sb strings.Builder
+	sb.WriteString("[")
+	for i, v := range b {
+		if i > 0 {
+			sb.WriteString(",")
+		}
+		fmt.Fprint(&sb, v)
+	}
+	sb.WriteString("]")
+	return sb.String()
 }

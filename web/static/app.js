@@ -684,6 +684,29 @@
     return lut;
   })();
 
+  // forEachCell calls fn with every marked cell index of u's mask:
+  // bitset row-major LSB-first, or a sorted list of uvarint deltas.
+  function forEachCell(u, fn) {
+    const n = u.mw * u.mh, m = u.mask;
+    if (u.enc === 0) {
+      for (let c = 0; c < n; c++) if ((m[c >> 3] >> (c & 7)) & 1) fn(c);
+      return;
+    }
+    let c = 0, i = 0, first = true;
+    while (i < m.length) {
+      let v = 0, shift = 0, byte;
+      do {
+        byte = m[i++];
+        v += (byte & 0x7f) * 2 ** shift;
+        shift += 7;
+      } while (byte & 0x80 && i < m.length);
+      c = first ? v : c + v;
+      first = false;
+      if (c >= n) break;
+      fn(c);
+    }
+  }
+
   // maskLayer paints the read cells of u into a mw x mh layer.
   function maskLayer(u) {
     const { mw, mh } = u;
@@ -697,27 +720,8 @@
     px.fill(0);
     const [r, g, b] = COLORS.mask;
     const on = (255 << 24) | (b << 16) | (g << 8) | r;
-    const n = mw * mh, m = u.mask;
     let count = 0;
-    if (u.enc === 0) {
-      for (let c = 0; c < n; c++) {
-        if ((m[c >> 3] >> (c & 7)) & 1) { px[c] = on; count++; }
-      }
-    } else {
-      let c = 0, i = 0, first = true;
-      while (i < m.length) {
-        let v = 0, shift = 0, byte;
-        do {
-          byte = m[i++];
-          v += (byte & 0x7f) * 2 ** shift;
-          shift += 7;
-        } while (byte & 0x80 && i < m.length);
-        c = first ? v : c + v;
-        first = false;
-        if (c >= n) break;
-        px[c] = on; count++;
-      }
-    }
+    forEachCell(u, (c) => { px[c] = on; count++; });
     l.ctx.putImageData(l.img, 0, 0);
     u.readCount = count * (u.scale > 1 ? u.scale * u.scale : 1); // upper bound at coarse scales
     u.cells = count;
@@ -1395,7 +1399,14 @@
 
   // Hooks for tests and for the curious: read-only views of the page state.
   window.sparsewatch = {
-    toCanvas, chartX: (f) => chartX(f) , state: S,
+    toCanvas, chartX: (f) => chartX(f), state: S,
+    // decode reads one binary frame update (bytes) as the page does.
+    decode: (bytes) => {
+      const u = decodeFrame(new DataView(new Uint8Array(bytes).buffer));
+      const cells = [];
+      forEachCell(u, (c) => cells.push(c));
+      return { state: u.state, scale: u.scale, frame: u.frame, g: u.g, limit: u.limit, mw: u.mw, mh: u.mh, cells, regions: u.regions };
+    },
     regionColor: COLORS.region, maskColor: COLORS.mask,
   };
 
