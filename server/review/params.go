@@ -43,6 +43,9 @@ type Params struct {
 	// Work caps the stream reads the calibration simulates per stage
 	// (0 = DefaultWork); beyond it the limit is found by tail extrapolation.
 	Work float64 `json:"work,omitempty"`
+	// Burnin is the frames simulated before calibration run lengths are
+	// counted (0 = the calibrator's steady-state default).
+	Burnin int `json:"burnin,omitempty"`
 }
 
 // DefaultWork is the review's default cap on simulated stream reads per
@@ -119,6 +122,8 @@ func (p Params) Validate() error {
 		return fmt.Errorf("limit %v must be a finite number >= 0", p.Limit)
 	case p.Paths < 0:
 		return fmt.Errorf("paths %d must be >= 0", p.Paths)
+	case p.Burnin < 0:
+		return fmt.Errorf("burnin %d must be >= 0", p.Burnin)
 	case p.Work < 0 || math.IsNaN(p.Work):
 		return fmt.Errorf("work %v must be >= 0", p.Work)
 	}

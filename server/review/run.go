@@ -280,7 +280,7 @@ func (rv *reviewer) calibrate(ctx context.Context) error {
 				paths = defaultPaths
 			}
 			spec := monitor.CalibrationSpec{Config: r.cfg, TargetARL0: r.p.ARL0, Paths: paths, Verify: max(10, paths/2),
-				WorkCap: work, Bootstrap: boot, Seed: r.p.Seed + 1}
+				WorkCap: work, Burnin: r.p.Burnin, Bootstrap: boot, Seed: r.p.Seed + 1}
 			if rv.h.Calibrating != nil {
 				idx, name := i, r.p.Policy
 				spec.Progress = func(done, total int) { rv.h.Calibrating(idx, name, done, total) }
