@@ -16,6 +16,7 @@ import (
 	"net/http/httptest"
 	"os"
 	"path/filepath"
+	"slices"
 	"strings"
 	"testing"
 	"time"
@@ -23,13 +24,14 @@ import (
 	"github.com/chromedp/chromedp"
 
 	"sparsewatch/server"
+	"sparsewatch/web"
 )
 
 const chromiumPath = "/usr/bin/chromium"
 
 // newBrowser starts a fresh headless chromium (BROWSER.md recipe) and
 // returns its first tab. The browser log is printed only if the test fails.
-func newBrowser(t *testing.T, timeout time.Duration) context.Context {
+func newBrowser(t testing.TB, timeout time.Duration) context.Context {
 	t.Helper()
 	if _, err := os.Stat(chromiumPath); err != nil {
 		t.Skipf("browser tests need Debian's chromium at %s (apt-get install chromium): %v", chromiumPath, err)
@@ -129,7 +131,7 @@ func poll[T any](t *testing.T, tab context.Context, what, expr string, timeout t
 	return v
 }
 
-func eval[T any](t *testing.T, tab context.Context, expr string) T {
+func eval[T any](t testing.TB, tab context.Context, expr string) T {
 	t.Helper()
 	v, err := chromedp.Run(tab, chromedp.Evaluate[T](expr))
 	if err != nil {
@@ -313,6 +315,8 @@ func TestWatchUploadShare(t *testing.T) {
 	shot(t, tab, "4-alarm")
 	box := toInts(probe["box"])
 	t.Logf("region %v (meets the planted square) in the alarm of frame %d", box, alarmFrame)
+	traffic := eval[[]int](t, tab, `[+document.body.dataset.bytesIn, +document.body.dataset.frameUpdates]`)
+	t.Logf("owner tab so far: %d binary bytes, %d frame updates (%d bytes per update, previews included)", traffic[0], traffic[1], traffic[0]/max(traffic[1], 1))
 	for _, side := range []string{"left", "right", "top"} {
 		if c := toInts(probe[side]); !near(c, regionRGB, 40) {
 			t.Errorf("canvas pixel on the %s side of the region outline is %v, want about %v", side, c, regionRGB)
@@ -562,4 +566,41 @@ func jsBytes(b []byte) string {
 	}
 	sb.WriteString("]")
 	return sb.String()
+}
+
+// BenchmarkPageMaskPaint measures, inside chromium, how long the page takes
+// to decode one frame update's read mask and paint it into its layer, for
+// masks at the 48 KB bound of the protocol (1024 x 1024 streams).
+//
+//	go test -run X -bench PageMaskPaint ./web/
+func BenchmarkPageMaskPaint(b *testing.B) {
+	ts := httptest.NewServer(http.FileServerFS(web.FS))
+	defer ts.Close()
+	tab := newBrowser(b, 2*time.Minute)
+	if err := chromedp.Do(tab, chromedp.Navigate(ts.URL+"/")); err != nil {
+		b.Fatal(err)
+	}
+	for _, c := range []struct {
+		name   string
+		enc    byte
+		mw, mh int
+		marked int
+	}{
+		{"bitset-512x768-3pct", 0, 512, 768, 31457},    // 512 x 768 cells: a bitset of exactly 48 KB
+		{"list-1024x1024-3pct", 1, 1024, 1024, 31457},  // 3% of 1024 x 1024 as a delta list
+		{"bitset-1024x384-25pct", 0, 1024, 384, 98304}, // a dense mask
+	} {
+		b.Run(c.name, func(b *testing.B) {
+			rng := rand.New(rand.NewPCG(1, uint64(c.marked)))
+			cells := rng.Perm(c.mw * c.mh)[:c.marked]
+			slices.Sort(cells)
+			msg := jsBytes(frameMsg(c.enc, 1, 1, c.mw, c.mh, 1, 2, cells, [4]uint16{}, 0))
+			eval[bool](b, tab, `window.benchMsg = `+msg+`, true`)
+			b.ResetTimer()
+			ms := eval[float64](b, tab, fmt.Sprintf(`(() => { const t0 = performance.now();
+				for (let i = 0; i < %d; i++) sparsewatch.paintMask(window.benchMsg);
+				return performance.now() - t0; })()`, b.N))
+			b.ReportMetric(ms/float64(b.N), "ms/update")
+		})
+	}
 }

@@ -519,6 +519,10 @@
   function onBinary(buf) {
     const dv = new DataView(buf);
     if (dv.byteLength < 1) return;
+    traffic.bytes += dv.byteLength;
+    if (dv.getUint8(0) === 1) traffic.frames++;
+    body.dataset.bytesIn = String(traffic.bytes);
+    body.dataset.frameUpdates = String(traffic.frames);
     switch (dv.getUint8(0)) {
       case 1: onFrame(decodeFrame(dv)); break;
       case 2: onPreview(dv, buf); break;
@@ -526,6 +530,8 @@
       default: break;
     }
   }
+
+  const traffic = { bytes: 0, frames: 0 }; // binary bytes received, frame updates among them
 
   // decodeFrame reads a kind-1 frame update (DEVELOPERS.md); it throws on a
   // short or inconsistent message rather than drawing garbage.
@@ -689,7 +695,16 @@
   function forEachCell(u, fn) {
     const n = u.mw * u.mh, m = u.mask;
     if (u.enc === 0) {
-      for (let c = 0; c < n; c++) if ((m[c >> 3] >> (c & 7)) & 1) fn(c);
+      // Skip empty bytes; take the set bits of the others lowest first.
+      for (let i = 0; i < m.length; i++) {
+        let v = m[i];
+        while (v) {
+          const c = i * 8 + (31 - Math.clz32(v & -v));
+          if (c >= n) return;
+          fn(c);
+          v &= v - 1;
+        }
+      }
       return;
     }
     let c = 0, i = 0, first = true;
@@ -1401,6 +1416,8 @@
   window.sparsewatch = {
     toCanvas, chartX: (f) => chartX(f), state: S,
     // decode reads one binary frame update (bytes) as the page does.
+    // paintMask decodes and paints one frame update's mask, as live updates are.
+    paintMask: (bytes) => { const u = decodeFrame(new DataView(new Uint8Array(bytes).buffer)); maskLayer(u); return u.cells; },
     decode: (bytes) => {
       const u = decodeFrame(new DataView(new Uint8Array(bytes).buffer));
       const cells = [];
