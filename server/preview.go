@@ -124,6 +124,31 @@ func (s *Session) previewOf(index int, name string) ([]byte, error) {
 	return encodePreview(index, gridImage{W: fr.Width, H: fr.Height, Stride: fr.Stride, Pix: fr.Pix}), nil
 }
 
+// greet gives a new viewer of a session that is not running (finished,
+// stopped, failed) the last frame's numbers and preview, so it does not
+// show an empty frame; a running session's next update comes at once.
+func (s *Session) greet(v *viewer) {
+	st := s.Status()
+	if st.Frame < 0 || st.GridW == 0 {
+		return
+	}
+	if st.State != StateFinished && st.State != StateStopped && st.State != StateFailed {
+		return
+	}
+	wire := byte(wireWatching)
+	if st.State == StateFinished {
+		wire = wireFinished
+	}
+	var regions []box // of an episode still on at the last frame
+	if al := s.Alarms(); len(al) > 0 && al[len(al)-1].EndFrame < 0 {
+		for _, r := range al[len(al)-1].Regions {
+			regions = append(regions, box{r.BBox[0], r.BBox[1], r.BBox[2], r.BBox[3], r.Peak})
+		}
+	}
+	v.put(msgFrame, newMaskEncoder(st.GridW, st.GridH).encode(nil, wire, st.Frame, st.G, st.Limit, nil, regions))
+	s.seek(v, st.Frame)
+}
+
 // seek sends viewer v a preview of frame f (owner's "seek" message).
 func (s *Session) seek(v *viewer, f int) {
 	name, ok := s.frameName(f)

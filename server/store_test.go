@@ -155,3 +155,34 @@ func TestParamsChangeKeepsOldRun(t *testing.T) {
 		t.Fatalf("current alarms.jsonl holds %d events of the old run", len(cur))
 	}
 }
+
+// TestFinishedSessionGreets: a viewer that connects after the review ended
+// still gets the last frame's numbers (state finished) and its preview.
+func TestFinishedSessionGreets(t *testing.T) {
+	ts := mustServer(t, Options{})
+	cr := ts.mustUpload(t, synthFrames(t, 16, 12, 60, nil), `{"budget":"20%","top_r":2,"reference_frames":50,"limit":50,"pace":0}`)
+	waitReport(t, ts.Server, cr.ID)
+	conn, _, err := dialWS(t, ts, cr.ID, cr.ShareToken, nil)
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer conn.Close()
+	conn.SetReadDeadline(time.Now().Add(5 * time.Second))
+	var frame, preview bool
+	for !(frame && preview) {
+		kind, msg, err := conn.ReadMessage()
+		if err != nil {
+			t.Fatalf("frame update %v, preview %v: %v", frame, preview, err)
+		}
+		if kind != websocket.BinaryMessage {
+			continue
+		}
+		switch msg[0] {
+		case msgFrame:
+			d := decodeFrameMsg(t, msg)
+			frame = d.frame == 59 && d.state == wireFinished
+		case msgPreview:
+			preview = binary.LittleEndian.Uint32(msg[4:]) == 59
+		}
+	}
+}

@@ -62,6 +62,7 @@ func (s *Server) handleWS(c echo.Context) error {
 		ws.Close()
 		return err
 	}
+	sess.greet(v)
 	done := make(chan struct{})
 	go s.readLoop(ws, sess, v, done)
 	s.writeLoop(ws, sess, v, hello, done)
