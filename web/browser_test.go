@@ -183,7 +183,12 @@ func writeFrames(t *testing.T) []string {
 		}
 		paths = append(paths, p)
 	}
-	return paths
+	// One broken file last: the page must list it while the review goes on.
+	bad := filepath.Join(dir, fmt.Sprintf("frame%d.png", testFrames+1))
+	if err := os.WriteFile(bad, []byte("\x89PNG\r\n\x1a\nnot really"), 0o644); err != nil {
+		t.Fatal(err)
+	}
+	return append(paths, bad)
 }
 
 // fixedLimit is the control limit the test asks for: "" (calibrate from
@@ -243,7 +248,7 @@ func TestWatchUploadShare(t *testing.T) {
 	if err := chromedp.Do(tab, chromedp.SetUploadFiles(chromedp.CSS("#files"), paths)); err != nil {
 		t.Fatal(err)
 	}
-	poll[bool](t, tab, "the picked files", fmt.Sprintf(`document.body.dataset.picked === "%d"`, testFrames), 5*time.Second)
+	poll[bool](t, tab, "the picked files", fmt.Sprintf(`document.body.dataset.picked === "%d"`, len(paths)), 5*time.Second)
 	if err := chromedp.Do(tab, chromedp.Click(chromedp.CSS("#send"))); err != nil {
 		t.Fatal(err)
 	}
@@ -397,6 +402,11 @@ func TestWatchUploadShare(t *testing.T) {
 	shot(t, viewer, "5-share-alarm-page")
 	poll[bool](t, tab, "the end of the review", `document.body.dataset.state === "finished"`, 30*time.Second)
 	shot(t, tab, "6-finished")
+	// The broken file is listed by name; the review went on without it.
+	if txt := eval[string](t, tab, `document.body.dataset.fileErrors + " " + document.getElementById("file-errors").textContent`); !strings.HasPrefix(txt, "1 ") ||
+		!strings.Contains(txt, fmt.Sprintf("frame%d.png", testFrames+1)) {
+		t.Errorf("problems shown for the upload with one broken file: %q", txt)
+	}
 	// After the review, clicking the chart asks the server for that frame
 	// (seek) and its picture is shown.
 	xy = eval[[]float64](t, tab, fmt.Sprintf(`(() => { const r = document.getElementById("chart").getBoundingClientRect();
