@@ -41,17 +41,19 @@ func runServe(ctx context.Context, env Env, args []string) error {
 		*demo = "default"
 	}
 	log := slog.New(slog.NewTextHandler(env.Stderr, &slog.HandlerOptions{Level: slog.LevelInfo}))
+	// Listen first: a busy port is reported at once, before any review of
+	// the data directory resumes (two servers must not share one).
+	ln, err := net.Listen("tcp", *addr)
+	if err != nil {
+		return fmt.Errorf("%w (another server on this address? pick one with --addr)", err)
+	}
 	srv, err := server.New(server.Options{
 		DataDir: *data, Addr: *addr, MaxUploadBytes: *maxUpload, MaxPixels: *maxPixels,
 		AllowCameraURL: allow, Logger: log,
 	})
 	if err != nil {
+		ln.Close()
 		return err
-	}
-	ln, err := net.Listen("tcp", *addr)
-	if err != nil {
-		srv.Close()
-		return fmt.Errorf("listen on %s: %w", *addr, err)
 	}
 	base := "http://" + ln.Addr().String()
 	srv.SetBaseURL(base)
