@@ -317,7 +317,8 @@
     const tb = $("sessions").querySelector("tbody");
     let list;
     try { list = await api("GET", "/api/sessions"); } catch (e) {
-      tb.innerHTML = "<tr><td colspan=4 class=muted>Could not list sessions: " + e.message + "</td></tr>";
+      tb.innerHTML = "<tr><td colspan=4 class=muted></td></tr>";
+      tb.querySelector("td").textContent = "Could not list sessions: " + e.message;
       return;
     }
     const items = Array.isArray(list) ? list : (list && list.sessions) || [];
@@ -456,7 +457,7 @@
 
   function onStatus(s) {
     // A run that starts over (new settings) reports frame -1: drop the old history.
-    if (s.frame === -1 && (S.fr.length > 0 || S.cur)) resetHistory();
+    if (s.frame === -1 && (s.state === "queued" || s.frames_seen === 0) && (S.fr.length > 0 || S.cur)) resetHistory();
     S.status = Object.assign(S.status, s);
     if (s.width && s.height && (s.width !== S.W || s.height !== S.H || s.grid_w !== S.gw)) {
       setGeometry(s.width, s.height, s.grid_w, s.grid_h, s.tile);
