@@ -931,7 +931,17 @@
       dirty();
     };
     for (const id of ["show-mask", "show-regions"]) $(id).onchange = dirty;
-    $("show-heat").onchange = (e) => { send({ type: "heat", on: e.target.checked }); dirty(); };
+    $("show-heat").onchange = (e) => {
+      send({ type: "heat", on: e.target.checked });
+      dirty();
+      if (!e.target.checked) return;
+      const asked = S.heatFrame;
+      setTimeout(() => {
+        if ($("show-heat").checked && S.heatFrame === asked)
+          $("readout").textContent = ["finished", "stopped", "failed"].includes(body.dataset.state) ?
+            "Heat images come only while frames are being watched." : "No heat image has come from the server yet.";
+      }, 3000);
+    };
     c.addEventListener("wheel", (e) => {
       e.preventDefault();
       const r = c.getBoundingClientRect();
