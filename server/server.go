@@ -54,6 +54,7 @@ type Server struct {
 	baseURL  string // scheme://host of the listener, for owner_url/share_url; "" = relative
 
 	compareSlot chan struct{} // one compare at a time
+	lock        *os.File      // exclusive lock on the data directory
 
 	// review runs one session's frames; tests and the default loop set it.
 	review func(ctx context.Context, s *Session) (*Report, error)
@@ -77,8 +78,12 @@ func New(opt Options) (*Server, error) {
 	if err := os.MkdirAll(filepath.Join(opt.DataDir, "sessions"), 0o755); err != nil {
 		return nil, fmt.Errorf("server: data directory: %w", err)
 	}
+	lock, err := lockDataDir(opt.DataDir)
+	if err != nil {
+		return nil, err
+	}
 	ctx, stop := context.WithCancel(context.Background())
-	s := &Server{
+	s := &Server{lock: lock,
 		opt: opt, log: opt.Logger, ctx: ctx, stop: stop,
 		sessions: map[string]*Session{}, byShare: map[string]*Session{},
 		compareSlot: make(chan struct{}, 1),
@@ -87,6 +92,7 @@ func New(opt Options) (*Server, error) {
 	s.echo = s.routes()
 	if err := s.loadSessions(); err != nil {
 		stop()
+		lock.Close()
 		return nil, err
 	}
 	return s, nil
@@ -267,4 +273,10 @@ func (s *Server) Close() {
 	for _, sess := range all {
 		sess.stop()
 	}
+	s.mu.Lock()
+	if s.lock != nil {
+		s.lock.Close()
+		s.lock = nil
+	}
+	s.mu.Unlock()
 }

@@ -186,3 +186,17 @@ func TestFinishedSessionGreets(t *testing.T) {
 		}
 	}
 }
+
+// TestDataDirLocked: a second server on the same data directory is refused.
+func TestDataDirLocked(t *testing.T) {
+	ts := mustServer(t, Options{})
+	if _, err := New(Options{DataDir: ts.opt.DataDir}); err == nil || !strings.Contains(err.Error(), "in use") {
+		t.Fatalf("second server on one data directory: %v", err)
+	}
+	ts.Close()
+	s2, err := New(Options{DataDir: ts.opt.DataDir})
+	if err != nil {
+		t.Fatalf("after the first closed: %v", err)
+	}
+	s2.Close()
+}
