@@ -371,7 +371,7 @@ func TestWatchUploadShare(t *testing.T) {
 	if err != nil || !strings.Contains(csv, "\n"+fmt.Sprint(alarmFrame)+",") {
 		t.Errorf("alarms CSV from the page's link (%v) has no row for frame %d:\n%.300s", err, alarmFrame, csv)
 	}
-	shot(t, tab, "4b-heat")
+	shot(t, tab, "4b-picked-alarm")
 	// The viewer has no working controls, and a write with its token is refused.
 	ctl := eval[map[string]any](t, viewer, `(() => ({
 		fieldsDisabled: document.getElementById("settings-fields").disabled,
