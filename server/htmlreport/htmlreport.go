@@ -68,9 +68,9 @@ func Write(w io.Writer, in Input) error {
 		if a.EndFrame >= 0 {
 			av.End = fmt.Sprint(a.EndFrame)
 		}
-		regs := a.PeakRegions
+		regs := a.Regions // at the episode's largest G
 		if len(regs) == 0 {
-			regs = a.Regions
+			regs = a.StartRegions
 		}
 		av.Regions = regs
 		if img, ok := in.Snapshots[a.Frame]; ok && img != nil {
