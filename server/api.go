@@ -50,6 +50,11 @@ func (s *Server) routes() *echo.Echo {
 	// calibration progress reaches the viewers as "calibration" messages.
 	e.POST("/api/sessions/:id/calibrate", s.handleParams)
 	e.POST("/api/sessions/:id/compare", s.handleCompare)
+	// budget planner (planner.go) and the HTML review report (reportfile.go)
+	e.POST("/api/sessions/:id/plan", s.handlePlanStart)
+	e.GET("/api/sessions/:id/plan", s.handlePlanGet)
+	e.DELETE("/api/sessions/:id/plan", s.handlePlanCancel)
+	e.GET("/api/sessions/:id/report.html", s.handleReportHTML)
 	e.GET("/api/share/:token", s.handleShareLookup)
 	e.GET("/api/demos", func(c echo.Context) error {
 		return c.JSON(http.StatusOK, map[string]any{"demos": demoList()})
