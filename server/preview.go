@@ -165,8 +165,19 @@ func (s *Session) frameName(f int) (string, bool) {
 	if m.Source.Kind == "demo" {
 		return "", f >= 0
 	}
-	names, err := s.srv.frameNames(s.dir, m.Source)
-	if err != nil || f < 0 || f >= len(names) {
+	s.mu.Lock()
+	names := s.names
+	s.mu.Unlock()
+	if names == nil { // uploads never change: list them once
+		var err error
+		if names, err = s.srv.frameNames(s.dir, m.Source); err != nil {
+			return "", false
+		}
+		s.mu.Lock()
+		s.names = names
+		s.mu.Unlock()
+	}
+	if f < 0 || f >= len(names) {
 		return "", false
 	}
 	return names[f], true

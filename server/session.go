@@ -104,6 +104,7 @@ type Session struct {
 	report        *Report
 	logged        map[string]bool // alarm events already in alarms.jsonl ("start:F", "end:F")
 	lastRefStatus time.Time
+	names         []string // upload's frame files in review order, listed on first need
 	cancel        context.CancelFunc
 	done          chan struct{}
 
