@@ -15,6 +15,7 @@ import (
 	"time"
 
 	"sparsewatch/frames"
+	"sparsewatch/server/htmlreport"
 	"sparsewatch/server/review"
 )
 
@@ -41,6 +42,7 @@ func runScan(ctx context.Context, env Env, args []string) error {
 	statsOut := fs.String("stats", "", "also write frame,G,limit,pixels_read for every watched frame to FILE.csv")
 	compare := fs.String("compare", "", "run several policies on the same frames, e.g. adaptive,random,full, and print a table")
 	truthPath := fs.String("truth", "", "ground truth (truth.json of a demo scenario): the table then shows delay and whether the box holds the centre")
+	htmlOut := fs.String("html", "", "also write a self-contained HTML report (statistic chart, alarm pictures) to FILE.html")
 	maxPixels := fs.Int64("max-pixels", frames.DefaultMaxPixels, "refuse frames with more pixels than this")
 	pos, err := parseInterspersed(fs, args)
 	if err != nil {
@@ -97,6 +99,7 @@ func runScan(ctx context.Context, env Env, args []string) error {
 	}
 
 	prog := newScanProgress(env.Stderr, src.Len(), len(policies))
+	var series htmlreport.Recorder
 	rec := make([]string, 0, 5)
 	hooks := review.Hooks{
 		Reference: func(done, total int) { prog.reference(done, total) },
@@ -115,6 +118,9 @@ func runScan(ctx context.Context, env Env, args []string) error {
 			}
 			if e.Run == 0 {
 				prog.frame(e.Index)
+				if *htmlOut != "" {
+					series.Frame(e)
+				}
 			}
 		},
 	}
@@ -128,6 +134,16 @@ func runScan(ctx context.Context, env Env, args []string) error {
 	}
 	if *alarmsOut != "" {
 		if err := writeAlarms(*alarmsOut, reps); err != nil {
+			return err
+		}
+	}
+	if *htmlOut != "" {
+		// Alarm pictures need the frames again; a pipe cannot be re-read.
+		var again frames.Source
+		if pos[0] != "-" {
+			again, _, _ = frames.Open(pos[0], frames.Options{MaxPixels: *maxPixels})
+		}
+		if err := htmlreport.WriteFile(*htmlOut, reps[0], series.Points, again); err != nil {
 			return err
 		}
 	}

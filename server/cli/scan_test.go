@@ -52,7 +52,8 @@ func TestScanReportContract(t *testing.T) {
 	alarms := filepath.Join(t.TempDir(), "alarms.csv")
 	stats := filepath.Join(t.TempDir(), "stats.csv")
 	// A fixed limit keeps the test fast; calibration is tested in review.
-	out, stderr, err := runCmd(t, nil, dir, "--budget", "20%", "--warmup", "30", "--limit", "250", "--alarms", alarms, "--stats", stats)
+	html := filepath.Join(t.TempDir(), "report.html")
+	out, stderr, err := runCmd(t, nil, dir, "--budget", "20%", "--warmup", "30", "--limit", "250", "--alarms", alarms, "--stats", stats, "--html", html)
 	if err != nil {
 		t.Fatalf("scan: %v\n%s", err, stderr)
 	}
@@ -89,6 +90,9 @@ func TestScanReportContract(t *testing.T) {
 	rows := readCSV(t, alarms)
 	if len(rows) != len(r.Alarms)+1 || rows[0][1] != "frame" || rows[1][1] != fmt.Sprint(r.Alarms[0].Frame) {
 		t.Errorf("alarms.csv %v", rows)
+	}
+	if b, err := os.ReadFile(html); err != nil || !strings.Contains(string(b), "<html") {
+		t.Errorf("HTML report: %v (%d bytes)", err, len(b))
 	}
 	srows := readCSV(t, stats)
 	if strings.Join(srows[0], ",") != "frame,G,limit,pixels_read" || len(srows) != 1+r.FramesWatched || srows[1][0] != "30" || srows[1][3] != "64" {
