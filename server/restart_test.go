@@ -159,9 +159,11 @@ func TestRestartResumesReview(t *testing.T) {
 	if err != nil || len(before) < 1 {
 		t.Fatalf("alarm events logged before the kill: %d (%v), want the first alarm's start", len(before), err)
 	}
-	if rows, _ := readStats(sessDir); len(rows) == 0 || rows[len(rows)-1].Frame >= 399 {
-		t.Fatalf("the review was not interrupted mid-way: %d stats rows", len(rows))
+	rowsBefore, _ := readStats(sessDir)
+	if len(rowsBefore) == 0 || rowsBefore[len(rowsBefore)-1].Frame >= 399 {
+		t.Fatalf("the review was not interrupted mid-way: %d stats rows", len(rowsBefore))
 	}
+	t.Logf("killed after frame %d with %d alarm events logged", rowsBefore[len(rowsBefore)-1].Frame, len(before))
 
 	c2 := startChild(t, bin, data)
 	defer func() { c2.cmd.Process.Kill(); c2.cmd.Wait() }()
@@ -205,6 +207,7 @@ func TestRestartResumesReview(t *testing.T) {
 		t.Fatalf("%d alarm events logged, want %d (a start per alarm, an end per ended alarm)", len(after), nwant)
 	}
 	rows, _ := readStats(sessDir)
+	t.Logf("resumed run: %d alarm events, %d stats rows (frames %d-%d), alarms %+v", len(after), len(rows), rows[0].Frame, rows[len(rows)-1].Frame, got.Alarms)
 	for i := 1; i < len(rows); i++ {
 		if rows[i].Frame != rows[i-1].Frame+1 {
 			t.Fatalf("stats.csv frame %d follows %d", rows[i].Frame, rows[i-1].Frame)
