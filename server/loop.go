@@ -95,6 +95,7 @@ func defaultReview(ctx context.Context, s *Session) (*Report, error) {
 	if err != nil {
 		return nil, err
 	}
+	src = frames.Prefetch(src, 2) // decode ahead on the second core, as scan does
 	defer src.Close()
 	s.setTotal(src.Len())
 	rp := reviewParams(m.Params)
