@@ -21,7 +21,7 @@ type PlanSpec struct {
 	Runs          int     // delay runs per policy and budget (default 200)
 	Paths         int     // calibration paths (default 200)
 	Burnin        int     // frames before the change and before counting run lengths (0 = SteadyBurnin per policy)
-	Quiet         int     // alarm-free frames before the change for a run to count (0 = min(burn-in, 1000), the same for every policy)
+	Quiet         int     // alarm-free frames before the change for a run to count (0 = min(burn-in, 1000, ARL0), the same for every policy)
 	Seed          uint64
 	Progress      func(done, total int) // work units finished; calls are serialised
 }
@@ -159,7 +159,9 @@ func Plan(ctx context.Context, spec PlanSpec) ([]PlanResult, error) {
 		cfg.Limit = cal.Limit
 		sc.Burnin = cal.Burnin // the change comes in the same steady state
 		if spec.Quiet == 0 {
-			sc.Quiet = min(sc.Burnin, 1000)
+			// One ARL0 (at most 1000 frames) of quiet: with ARL0 1000 about
+			// 37% of runs count, whatever the policy's burn-in.
+			sc.Quiet = min(sc.Burnin, 1000, int(math.Ceil(spec.ARL0)))
 		} else {
 			sc.Quiet = spec.Quiet
 		}
