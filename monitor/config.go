@@ -48,9 +48,14 @@ type Config struct {
 	CompFraction float64 // default 0.25
 	Compensation float64
 
-	Limit      float64 // h: alarm when G >= h; 0 means not calibrated (never alarms)
-	Hysteresis float64 // an episode ends when G < Hysteresis*h (default 0.5)
-	Restart    bool    // reset every statistic after an alarm instead of hysteresis
+	Limit float64 // h: alarm when G >= h; 0 means not calibrated (never alarms)
+	// An episode ends when G falls below base + Hysteresis*(h - base), where
+	// base is the engine's running in-control level of G (default 0.5).
+	// The top-r sum of many streams never sits near zero in control, so a
+	// level of a fraction of h alone could lie below it and keep the
+	// episode on for good.
+	Hysteresis float64
+	Restart    bool // reset every statistic after an alarm instead of hysteresis
 
 	SpatialWeight float64 // a in (0,1) for the spatial policy (default 0.5)
 	ThompsonEps   float64 // eps in Gamma(eps+L,1) for thompson (default 1)

@@ -51,7 +51,9 @@ type Engine struct {
 	started     Alarm
 	ended       Alarm
 	sweepLen    int
-	sink        float32 // keeps statePass from being optimised away
+	sink        float32 // keeps StatePass from being optimised away
+	gBase       float64 // running in-control level of G (see EndLevel)
+	baseN       int
 }
 
 // New validates cfg (after Defaults) and allocates every per-stream slice.
@@ -111,6 +113,7 @@ func (e *Engine) Reset() {
 	e.resetStats()
 	e.state = Watching
 	e.regions = e.regions[:0]
+	e.gBase, e.baseN = 0, 0
 }
 
 func (e *Engine) resetStats() {

@@ -329,3 +329,39 @@ func TestSelectTop(t *testing.T) {
 		}
 	}
 }
+
+// TestEpisodeEndsAboveZeroLevel: with many streams the in-control top-r sum
+// sits well above half the limit, so an end level of Hysteresis*h alone
+// would never be reached. The episode must still end once the change stops,
+// and a second change must give a second alarm.
+func TestEpisodeEndsAboveZeroLevel(t *testing.T) {
+	cfg := Config{Width: 32, Height: 24, Budget: 768, TopR: 4, Policy: Full, Limit: 32}
+	e := mustEngine(t, cfg)
+	rng := rand.New(rand.NewPCG(8, 8))
+	z := make([]float32, cfg.Streams())
+	changed := map[int32]bool{100: true, 101: true, 132: true, 133: true}
+	var base float64
+	starts, ends := 0, 0
+	for f := 0; f < 3000; f++ {
+		var ch map[int32]bool
+		if (f >= 1000 && f < 1100) || (f >= 2000 && f < 2100) {
+			ch = changed
+		}
+		u := stepNormal(t, e, rng, z, ch, 2)
+		if f == 999 {
+			base = e.gBase
+		}
+		if u.Started != nil && f >= 1000 {
+			starts++
+		}
+		if u.Ended != nil && f >= 1000 {
+			ends++
+		}
+	}
+	if base < 0.5*cfg.Limit {
+		t.Logf("in-control level of G %.1f is below h/2 = %.1f: this grid does not exercise the case", base, cfg.Limit/2)
+	}
+	if starts < 2 || ends < 2 {
+		t.Fatalf("two separate changes gave %d alarm starts and %d ends (in-control G level %.1f, end level %.1f)", starts, ends, base, e.EndLevel())
+	}
+}

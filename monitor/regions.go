@@ -23,10 +23,18 @@ func (w *regionWork) init(m int) {
 
 // episodeStep updates the alarm episode after frame t's G is known
 // (METHODS.md section 6): an episode starts at the first frame with G >= h
-// and ends when G falls below Hysteresis*h, or at once in restart mode.
+// and ends when G falls below EndLevel (hysteresis), or at once in restart
+// mode.
 func (e *Engine) episodeStep(upd *Update, t int32) {
 	h := e.limit
 	frame := upd.Frame
+	if h <= 0 || e.state == Watching {
+		// Running in-control level of G: EWMA over watched frames, weight
+		// 1/baseSpan (plain mean over the first baseSpan frames).
+		e.baseN++
+		wt := 1 / float64(min(e.baseN, baseSpan))
+		e.gBase += wt * (upd.G - e.gBase)
+	}
 	if h <= 0 {
 		upd.State = Watching
 		return
@@ -50,7 +58,7 @@ func (e *Engine) episodeStep(upd *Update, t int32) {
 			}
 		}
 	case Alarming:
-		if upd.G < e.cfg.Hysteresis*h {
+		if upd.G < e.EndLevel() {
 			e.endEpisode(upd, frame)
 			upd.State = Watching
 			e.regions = e.regions[:0]
@@ -66,6 +74,17 @@ func (e *Engine) episodeStep(upd *Update, t int32) {
 	if e.state == Alarming {
 		upd.Regions = e.regions
 	}
+}
+
+// baseSpan is the span, in frames, of the running in-control level of G.
+const baseSpan = 500
+
+// EndLevel returns the level G must fall below to end an episode:
+// base + Hysteresis*(h - base), base being the running in-control level of
+// G (never above h).
+func (e *Engine) EndLevel() float64 {
+	base := min(max(e.gBase, 0), e.limit)
+	return base + e.cfg.Hysteresis*(e.limit-base)
 }
 
 func (e *Engine) endEpisode(upd *Update, frame int) {
