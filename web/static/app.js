@@ -364,6 +364,8 @@
     $("dl-jsonl").href = base + "/alarms.jsonl" + q;
     $("dl-report").href = base + "/report" + q;
     $("dl-stats").href = base + "/stats.csv" + q;
+    $("dl-html").href = base + "/report.html" + q;
+    $("dl-html").download = "sparsewatch-" + id + "-report.html";
     $("dl-report").download = "sparsewatch-" + id + "-report.json";
     $("dl-stats").download = "sparsewatch-" + id + "-stats.csv";
     $("dl-csv").download = "sparsewatch-" + id + "-alarms.csv";
@@ -373,6 +375,7 @@
     wireChart();
     wireSettings();
     wireCompare();
+    wirePlanner();
     wireShare();
     $("snapshot").addEventListener("click", snapshot);
     window.addEventListener("resize", () => { view.fitted && fitView(); dirty(); });
@@ -419,6 +422,7 @@
       case "alarm": addAlarm(m.alarm); renderAlarms(); dirtyChart(); break;
       case "status": onStatus(m.session || {}); break;
       case "calibration": onCalibration(m); break;
+      case "plan": onPlanMessage(m); break;
       case "error": showError(m.message || m.error || "server error"); break;
       default: break;
     }
@@ -450,6 +454,7 @@
 
   function setGeometry(w, h, gw, gh, tile) {
     S.W = w | 0; S.H = h | 0; S.tile = tile || 1;
+    planDefaults();
     S.gw = gw | 0 || Math.ceil(S.W / S.tile); S.gh = gh | 0 || Math.ceil(S.H / S.tile);
     $("f-size").textContent = S.W ? S.W + " × " + S.H + " pixels" + (S.tile > 1 ? ", tiles of " + S.tile + " × " + S.tile : "") +
       " (" + intText(S.gw * S.gh) + " streams)" : "not known yet";
@@ -1370,6 +1375,229 @@
     ctx.strokeStyle = COLORS.g; ctx.beginPath();
     for (let i = 0; i < n; i++) { const x = X(fr ? fr[i] : i), y = Y(g[i]); if (i) ctx.lineTo(x, y); else ctx.moveTo(x, y); }
     ctx.stroke();
+  }
+
+
+  // ---------- budget planner (owner) ----------
+
+  const PLAN_POLICIES = [
+    ["adaptive", true], ["thompson", false], ["spatial", false], ["random", true],
+    ["stride", false], ["full", true], ["oracle", true],
+  ];
+  const PLAN_COLORS = {
+    adaptive: "#2b5d8a", thompson: "#7a4f9a", spatial: "#1f8a70", random: "#b8862b",
+    stride: "#8c8c8c", full: "#22262b", oracle: "#c63a22",
+  };
+  const planField = (n) => document.querySelector("#plan-form [name='" + n + "']");
+
+  // planDefaults fills the frame size and tile from the session once known.
+  function planDefaults() {
+    if (!$("plan-form")) return;
+    if (!planField("width").value && S.W) planField("width").value = S.W;
+    if (!planField("height").value && S.H) planField("height").value = S.H;
+    if (S.tile && !planField("tile").dataset.touched) planField("tile").value = S.tile;
+  }
+
+  function planRequest() {
+    const num = (n) => { const v = parseFloat(planField(n).value); return Number.isFinite(v) ? v : 0; };
+    const req = {
+      width: num("width") | 0, height: num("height") | 0, tile: num("tile") | 0, shift: num("shift"),
+      budgets: planField("budgets").value.split(",").map((x) => x.trim()).filter(Boolean),
+      policies: [...document.querySelectorAll("#plan-policies input:checked")].map((x) => x.value),
+      runs: num("runs") | 0, paths: num("paths") | 0, model: planField("model").value,
+      target_delay: num("target_delay"),
+    };
+    if (planField("size-mode").value === "area") req.area = num("size"); else req.radius = num("size");
+    const hours = document.querySelector("#plan-form [name='plan-arl0-mode'][value=hours]").checked;
+    if (hours) { req.per_hours = num("per_hours"); req.fps = num("fps"); } else req.arl0 = num("arl0");
+    return req;
+  }
+
+  function wirePlanner() {
+    const box = $("plan-policies");
+    box.append("Policies: ");
+    for (const [v, on] of PLAN_POLICIES) {
+      const l = document.createElement("label");
+      const cb = document.createElement("input");
+      cb.type = "checkbox"; cb.value = v; cb.checked = on;
+      l.append(cb, " " + (v === "oracle" ? "oracle (knows where the change is: the bound)" : v === "full" ? "full (every pixel)" : v));
+      box.appendChild(l);
+    }
+    planField("tile").addEventListener("input", () => { planField("tile").dataset.touched = "1"; });
+    $("plan-run").disabled = S.role !== "owner";
+    $("plan-form").addEventListener("submit", async (ev) => {
+      ev.preventDefault();
+      if (S.role !== "owner") return;
+      $("plan-advice").textContent = "";
+      body.dataset.planState = "running";
+      delete body.dataset.planRecommended;
+      setProgress($("plan-progress"), 0, "starting…");
+      $("plan-run").disabled = true; $("plan-cancel").disabled = false;
+      try {
+        await api("POST", "/api/sessions/" + encodeURIComponent(S.id) + "/plan", planRequest(), S.token);
+        planPoll();
+      } catch (err) {
+        planEnded();
+        body.dataset.planState = "failed";
+        setProgress($("plan-progress"), 0, "could not start: " + err.message);
+      }
+    });
+    $("plan-cancel").addEventListener("click", async () => {
+      try {
+        await api("DELETE", "/api/sessions/" + encodeURIComponent(S.id) + "/plan", undefined, S.token);
+      } catch (err) { setProgress($("plan-progress"), 0, "cancel failed: " + err.message); }
+      loadPlan();
+    });
+    loadPlan();
+  }
+
+  function planEnded() { $("plan-run").disabled = S.role !== "owner"; $("plan-cancel").disabled = true; }
+
+  // The websocket carries progress; a slow poll covers a lost connection.
+  let planTimer = 0;
+  function planPoll() {
+    clearTimeout(planTimer);
+    planTimer = setTimeout(() => loadPlan(), 3000);
+  }
+
+  function onPlanMessage(m) {
+    if (m.state === "running") {
+      body.dataset.planState = "running";
+      $("plan-run").disabled = true; $("plan-cancel").disabled = S.role !== "owner";
+      setProgress($("plan-progress"), m.progress || 0, "planning… " + Math.round(100 * (m.progress || 0)) + "%");
+      body.dataset.planProgress = String(m.progress || 0);
+      return;
+    }
+    loadPlan();
+  }
+
+  async function loadPlan() {
+    let rec;
+    try {
+      rec = await api("GET", "/api/sessions/" + encodeURIComponent(S.id) + "/plan", undefined, S.token);
+    } catch (err) { return; }
+    if (!rec || rec.state === "none") return;
+    if (rec.state === "running") {
+      onPlanMessage({ state: "running", progress: rec.progress });
+      planPoll();
+      return;
+    }
+    clearTimeout(planTimer);
+    planEnded();
+    if (rec.state === "cancelled") {
+      setProgress($("plan-progress"), 0, "cancelled");
+      body.dataset.planState = "cancelled";
+      return;
+    }
+    if (rec.state === "failed") {
+      setProgress($("plan-progress"), 0, "failed: " + (rec.message || ""));
+      body.dataset.planState = "failed";
+      return;
+    }
+    setProgress($("plan-progress"), 1, "done in " + fmt(rec.seconds, 0) + " s");
+    showPlan(rec);
+  }
+
+  function showPlan(rec) {
+    const rows = rec.results || [];
+    const a = rec.advice || {};
+    drawPlan(rows, rec);
+    const tb = $("plan-table").querySelector("tbody");
+    tb.innerHTML = "";
+    for (const r of rows) {
+      const tr = document.createElement("tr");
+      if (a.policy === r.policy && a.streams === r.streams) tr.className = "recommended";
+      const cells = [r.policy, fmt(100 * r.budget, 2) + "%", intText(r.streams), fmt(r.limit, 2),
+        r.arl0 > 0 ? intText(r.arl0) + " ± " + intText(r.arl0_se) + " frames" : "–",
+        r.add > 0 ? fmt(r.add, 2) + " ± " + fmt(r.add_se, 2) : "none counted"];
+      for (const c of cells) { const td = document.createElement("td"); td.textContent = c; tr.appendChild(td); }
+      tb.appendChild(tr);
+    }
+    $("plan-table").hidden = rows.length === 0;
+    $("plan-advice").textContent = a.text || "";
+    const q = rec.request || {};
+    $("plan-note").textContent = rec.grid_w + " × " + rec.grid_h + " streams; change: " + rec.changed_streams +
+      " streams shifted by " + q.shift + "; one false alarm per " + intText(q.arl0) + " frames; model: " + rec.model + ". " + (rec.note || "");
+    body.dataset.planState = "done";
+    body.dataset.planModel = rec.model || "";
+    if (a.streams) body.dataset.planRecommended = String(a.streams); else delete body.dataset.planRecommended;
+    body.dataset.planMet = String(!!a.met);
+  }
+
+  // drawPlan draws delay against budget, one line per policy with ±1 s.e.
+  // bars; full and oracle do not depend on the budget and are drawn across.
+  function drawPlan(rows, rec) {
+    const out = $("plan-plot");
+    out.innerHTML = "";
+    const ok = rows.filter((r) => r.add > 0);
+    if (ok.length === 0) { out.textContent = "No delay to draw."; return; }
+    const W = 640, H = 300, ml = 52, mr = 120, mt = 12, mb = 40;
+    const xs = [...new Set(ok.map((r) => r.budget))].sort((p, q) => p - q);
+    const logX = xs.length > 1;
+    const lo = Math.min(...ok.map((r) => Math.max(r.add - r.add_se, r.add / 2, 0.5)));
+    const hi = Math.max(...ok.map((r) => r.add + r.add_se), (rec.request && rec.request.target_delay) || 0);
+    const ly = (v) => Math.log10(Math.max(v, 1e-9));
+    const y0 = Math.floor(ly(lo) * 2) / 2, y1 = Math.ceil(ly(hi * 1.05) * 2) / 2 || 1;
+    const xT = (b) => logX ? Math.log10(b) : b;
+    const xa = xT(xs[0]), xb = xs.length > 1 ? xT(xs[xs.length - 1]) : xa + 1;
+    const X = (b) => xs.length > 1 ? ml + (xT(b) - xa) / (xb - xa) * (W - ml - mr) : ml + (W - ml - mr) / 2;
+    const Y = (v) => mt + (1 - (ly(v) - y0) / Math.max(y1 - y0, 1e-9)) * (H - mt - mb);
+    const NS = "http://www.w3.org/2000/svg";
+    const el = (name, attrs, text) => {
+      const e = document.createElementNS(NS, name);
+      for (const k in attrs) e.setAttribute(k, attrs[k]);
+      if (text !== undefined) e.textContent = text;
+      return e;
+    };
+    const svg = el("svg", { viewBox: "0 0 " + W + " " + H, role: "img", "aria-label": "average delay against budget" });
+    svg.appendChild(el("line", { x1: ml, y1: H - mb, x2: W - mr, y2: H - mb, stroke: "#666" }));
+    svg.appendChild(el("line", { x1: ml, y1: mt, x2: ml, y2: H - mb, stroke: "#666" }));
+    for (let e = Math.ceil(y0); e <= y1; e++) {
+      for (const m of [1, 2, 5]) {
+        const v = m * Math.pow(10, e);
+        if (ly(v) < y0 - 1e-9 || ly(v) > y1 + 1e-9) continue;
+        svg.appendChild(el("line", { x1: ml, y1: Y(v), x2: W - mr, y2: Y(v), stroke: "#eee" }));
+        svg.appendChild(el("text", { x: ml - 4, y: Y(v) + 4, "font-size": 11, "text-anchor": "end" }, String(v)));
+      }
+    }
+    for (const b of xs) svg.appendChild(el("text", { x: X(b), y: H - mb + 14, "font-size": 11, "text-anchor": "middle" }, fmt(100 * b, b < 0.01 ? 2 : 1) + "%"));
+    svg.appendChild(el("text", { x: (ml + W - mr) / 2, y: H - 6, "font-size": 12, "text-anchor": "middle" }, "pixels read per frame (budget)"));
+    svg.appendChild(el("text", { x: 12, y: (mt + H - mb) / 2, "font-size": 12, "text-anchor": "middle",
+      transform: "rotate(-90 12 " + (mt + H - mb) / 2 + ")" }, "average delay, frames"));
+    const target = rec.request && rec.request.target_delay;
+    if (target > 0 && ly(target) >= y0 && ly(target) <= y1) {
+      svg.appendChild(el("line", { x1: ml, y1: Y(target), x2: W - mr, y2: Y(target), stroke: "#2f7d4f", "stroke-dasharray": "2 3" }));
+      svg.appendChild(el("text", { x: W - mr + 4, y: Y(target) + 4, "font-size": 11, fill: "#2f7d4f" }, "accepted: " + target));
+    }
+    const pols = [...new Set(ok.map((r) => r.policy))];
+    let points = 0, legendY = mt + 10;
+    for (const p of pols) {
+      const pr = ok.filter((r) => r.policy === p).sort((u, v) => u.budget - v.budget);
+      const col = PLAN_COLORS[p] || "#444";
+      const g = el("g", { "data-policy": p });
+      if (p === "full" || p === "oracle") {
+        const r = pr[0];
+        g.appendChild(el("line", { x1: ml, y1: Y(r.add), x2: W - mr, y2: Y(r.add), stroke: col, "stroke-dasharray": "6 4" }));
+        points++;
+      } else {
+        g.appendChild(el("polyline", { fill: "none", stroke: col, "stroke-width": 1.6, points: pr.map((r) => X(r.budget) + "," + Y(r.add)).join(" ") }));
+        for (const r of pr) {
+          const x = X(r.budget), ya = Y(Math.max(r.add - r.add_se, 1e-9)), yb = Y(r.add + r.add_se);
+          g.appendChild(el("line", { x1: x, y1: ya, x2: x, y2: yb, stroke: col }));
+          g.appendChild(el("line", { x1: x - 4, y1: ya, x2: x + 4, y2: ya, stroke: col }));
+          g.appendChild(el("line", { x1: x - 4, y1: yb, x2: x + 4, y2: yb, stroke: col }));
+          g.appendChild(el("circle", { cx: x, cy: Y(r.add), r: 3, fill: col, class: "pt" }));
+          points++;
+        }
+      }
+      g.appendChild(el("line", { x1: W - mr + 8, y1: legendY, x2: W - mr + 26, y2: legendY, stroke: col, "stroke-width": 2,
+        "stroke-dasharray": p === "full" || p === "oracle" ? "6 4" : "" }));
+      g.appendChild(el("text", { x: W - mr + 30, y: legendY + 4, "font-size": 11 }, p));
+      legendY += 16;
+      svg.appendChild(g);
+    }
+    out.appendChild(svg);
+    body.dataset.planPoints = String(points);
   }
 
   // ---------- share and snapshot ----------
