@@ -37,6 +37,7 @@ type Options struct {
 	MaxUploadBytes int64    // largest upload request body (default 1 GiB)
 	MaxPixels      int      // largest frame, width*height (default 64 Mpixel)
 	AllowCameraURL []string // URL prefixes the server may fetch frames from
+	WatchRoot      string   // folder inside which sessions may watch folders ("" = none)
 	Logger         *slog.Logger
 }
 
@@ -55,6 +56,9 @@ type Server struct {
 
 	compareSlot chan struct{} // one compare at a time
 	lock        *os.File      // exclusive lock on the data directory
+
+	stdinID   string    // the session fed from standard input, if any (live.go)
+	stdinFeed *liveFeed // its feed
 
 	// review runs one session's frames; tests and the default loop set it.
 	review func(ctx context.Context, s *Session) (*Report, error)

@@ -81,6 +81,9 @@ type Status struct {
 	// (frame loop only: reference learning and calibration excluded).
 	FramesPerSecond float64 `json:"frames_per_second"`
 	ShareURL        string  `json:"share_url,omitempty"` // owner requests only
+	// Live is set for live sessions (camera URL, watched folder, browser
+	// camera, standard input): rates, drops, latency, the ARL0 used.
+	Live *LiveStatus `json:"live,omitempty"`
 }
 
 // Session is one review: its metadata, live status, chart history and the
@@ -114,6 +117,8 @@ type Session struct {
 	hookErr     error // first persistence error inside a review hook
 
 	previews *previewer
+
+	feed *liveFeed // live sessions only, made on first need (live.go); guarded by mu
 }
 
 // runState is the review goroutine's private state for one run.
@@ -173,6 +178,10 @@ func (s *Session) statusLocked() Status {
 	if s.st.Calibration != nil {
 		c := *s.st.Calibration
 		st.Calibration = &c
+	}
+	if s.feed != nil {
+		l := s.feed.status()
+		st.Live = &l
 	}
 	return st
 }
@@ -236,7 +245,11 @@ func (s *Session) runReview(ctx context.Context) {
 	err := s.openRun()
 	if err == nil {
 		var rep *Report
-		rep, err = s.srv.review(ctx, s)
+		review := s.srv.review
+		if isLiveKind(s.metaCopy().Source.Kind) {
+			review = liveReview
+		}
+		rep, err = review(ctx, s)
 		if err == nil && s.hookErr != nil {
 			err = s.hookErr
 		}
@@ -556,7 +569,7 @@ func (s *Session) setReference(done, total int) {
 // pace sleeps so an offline review runs at Params.Pace frames per second.
 func (s *Session) pace(ctx context.Context) error {
 	p := s.meta.Params.Pace // meta.Params only changes while no run is active
-	if p <= 0 {
+	if p <= 0 || isLiveKind(s.meta.Source.Kind) {
 		return ctx.Err()
 	}
 	run := s.run

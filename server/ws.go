@@ -83,8 +83,16 @@ func (s *Server) readLoop(ws *websocket.Conn, sess *Session, v *viewer, done cha
 			return
 		}
 		ws.SetReadDeadline(time.Now().Add(pongWait))
+		if kind == websocket.BinaryMessage {
+			// A camera frame (JPEG or PNG) for a browser-camera session,
+			// from its owner only; viewers' frames are ignored.
+			if v.role == roleOwner {
+				sess.ingest(s.ctx, data)
+			}
+			continue
+		}
 		if kind != websocket.TextMessage {
-			continue // camera frames belong to live sessions, not built yet
+			continue
 		}
 		var m struct {
 			Type  string `json:"type"`
