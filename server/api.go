@@ -213,12 +213,21 @@ func (s *Server) handleCreate(c echo.Context) error {
 			Kind     string `json:"kind"`
 			Scenario string `json:"scenario"`
 			URL      string `json:"url"`
+			Path     string `json:"path"`
 		} `json:"source"`
 		Name   string          `json:"name"`
 		Params json.RawMessage `json:"params"`
 	}
 	if err := json.Unmarshal(body, &req); err != nil {
 		return errorf(KindInvalid, "body: want multipart \"files\" or JSON {\"source\":{...},\"params\":{...}}: %v", err)
+	}
+	switch req.Source.Kind {
+	case kindCameraURL, kindFolder, kindBrowserCamera, kindStdin:
+		sess, err := s.createLive(req.Source.Kind, req.Source.URL, req.Source.Path, req.Name, req.Params)
+		if err != nil {
+			return err
+		}
+		return s.created(c, sess)
 	}
 	p, err := decodeParams(DefaultParams(), req.Params)
 	if err != nil {
@@ -237,27 +246,10 @@ func (s *Server) handleCreate(c echo.Context) error {
 			return err
 		}
 		return s.created(c, sess)
-	case "camera-url":
-		if !s.cameraAllowed(req.Source.URL) {
-			return errorf(KindForbidden, "camera URL %q is not allowed (the operator allows prefixes with --allow-camera-url)", req.Source.URL)
-		}
-		return errorf(KindUnavailable, "camera sessions are not available in this version")
 	case "":
-		return errorf(KindInvalid, "source.kind missing (demo or camera-url), or send multipart \"files\"")
+		return errorf(KindInvalid, "source.kind missing (demo, camera-url, folder or browser-camera), or send multipart \"files\"")
 	}
-	return errorf(KindInvalid, "source.kind %q unknown (demo or camera-url)", req.Source.Kind)
-}
-
-func (s *Server) cameraAllowed(u string) bool {
-	if u == "" {
-		return false
-	}
-	for _, p := range s.opt.AllowCameraURL {
-		if p != "" && strings.HasPrefix(u, p) {
-			return true
-		}
-	}
-	return false
+	return errorf(KindInvalid, "source.kind %q unknown (demo, camera-url, folder or browser-camera)", req.Source.Kind)
 }
 
 func (s *Server) handleList(c echo.Context) error {
