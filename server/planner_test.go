@@ -1,13 +1,22 @@
 package server
 
 import (
+	"context"
 	"encoding/json"
+	"image"
+	"math"
 	"net/http"
+	"os"
 	"os/exec"
 	"runtime"
+	"strconv"
 	"strings"
+	"sync"
 	"testing"
 	"time"
+
+	"sparsewatch/frames"
+	"sparsewatch/monitor"
 )
 
 // smallPlan is a planner request that takes a second or two.
@@ -243,4 +252,148 @@ func TestAdvice(t *testing.T) {
 	if a := advise(rows, 20); a.VsFull != 2 || a.VsOracle != 9 {
 		t.Errorf("distance from full %g (want 18/9 = 2) and from the oracle %g (want 18/2 = 9)", a.VsFull, a.VsOracle)
 	}
+}
+
+// TestMeasureFurnaceBootstrap is a measurement, not a unit test: run it with
+// SPARSEWATCH_MEASURE=1 go test -v -run TestMeasureFurnaceBootstrap ./server/
+// (a few minutes). It plans the furnace demo (tile 4, adaptive, 3%, shift 2)
+// with the bootstrap of its 50 reference frames and with the normal model,
+// then runs the engine with each limit on fresh in-control frames of the
+// same scene (other noise seeds, frames 50-199: before the change) and
+// measures the ARL0 each limit really gives, counted as the calibration
+// counts it (burn-in, then run lengths with a gap after each alarm).
+func TestMeasureFurnaceBootstrap(t *testing.T) {
+	if os.Getenv("SPARSEWATCH_MEASURE") == "" {
+		t.Skip("measurement: set SPARSEWATCH_MEASURE=1")
+	}
+	target := 200.0
+	if v, err := strconv.ParseFloat(os.Getenv("SPARSEWATCH_ARL0"), 64); err == nil {
+		target = v
+	}
+	ts := mustServer(t, Options{})
+	p := DefaultParams()
+	p.Pace, p.Limit = 0, 1e9 // the review is not needed: only the reference frames
+	sess, err := ts.CreateDemo("furnace", "furnace", p, map[string]bool{"pace": true, "limit": true})
+	if err != nil {
+		t.Fatal(err)
+	}
+	m := sess.metaCopy()
+	tile, shift := m.Params.Tile, m.Params.Shift
+	sc, _ := lookupDemo("furnace")
+	gw, gh := (sc.Width+tile-1)/tile, (sc.Height+tile-1)/tile
+	boot, note, err := ts.planBootFrames(context.Background(), sess, tile, gw, gh)
+	if err != nil {
+		t.Fatal(err)
+	}
+	t.Logf("tile %d, shift %g, %d x %d streams; %s", tile, shift, gw, gh, note)
+	spec := monitor.PlanSpec{Width: gw, Height: gh, Radius: 3.0 / float64(tile), Shift: shift, Budgets: []float64{0.03},
+		Policies: []monitor.Policy{monitor.Adaptive}, ARL0: target, TopR: m.Params.TopR, CompFraction: m.Params.Compensation,
+		Runs: 20, Paths: 200, Seed: 1}
+	t0 := time.Now()
+	bres, err := planBootstrap(context.Background(), spec, boot)
+	if err != nil {
+		t.Fatal(err)
+	}
+	nres, err := monitor.Plan(context.Background(), spec)
+	if err != nil {
+		t.Fatal(err)
+	}
+	hB, hN := bres[0].Limit, nres[0].Limit
+	t.Logf("planned in %s: bootstrap limit %.3f (simulated ARL0 %.0f ± %.0f), normal limit %.3f (simulated ARL0 %.0f ± %.0f)",
+		time.Since(t0).Round(time.Second), hB, bres[0].ARL0, bres[0].ARL0SE, hN, nres[0].ARL0, nres[0].ARL0SE)
+
+	// The session's model, learnt from the same reference frames.
+	tiler, _ := frames.NewTiler(sc.Width, sc.Height, tile)
+	lr, _ := monitor.NewLearner(tiler.Streams(), m.Params.ReferenceFrames, monitor.ModelOptions{Kind: monitor.ModelKind(m.Params.Model)})
+	var fr frames.Frame
+	for i := 0; i < m.Params.ReferenceFrames; i++ {
+		img, _ := sc.Frame(i)
+		frames.FromImage(img, &fr)
+		v := make([]float32, tiler.Streams())
+		tiler.Means(&fr, v)
+		lr.Add(v)
+	}
+	md, err := lr.Model()
+	if err != nil {
+		t.Fatal(err)
+	}
+	cfg := monitor.Config{Width: gw, Height: gh, Budget: 144, TopR: m.Params.TopR, Shift: shift, Policy: monitor.Adaptive,
+		CompFraction: m.Params.Compensation}
+	if q, _ := monitor.BudgetStreams(0.03, gw*gh); q != cfg.Budget {
+		cfg.Budget = q
+	}
+	alarms := 40
+	if v, err := strconv.Atoi(os.Getenv("SPARSEWATCH_ALARMS")); err == nil {
+		alarms = v
+	}
+	type out struct {
+		arl, se float64
+		n       int
+	}
+	measure := func(h float64, seed0 uint64) out {
+		c := cfg
+		c.Limit = h
+		eng, err := monitor.New(c)
+		if err != nil {
+			t.Fatal(err)
+		}
+		burn, gap := monitor.SteadyBurnin(c), max(50, monitor.SteadyBurnin(c)/4)
+		fresh := sc
+		fresh.Seed = seed0
+		i := m.Params.ReferenceFrames
+		raw := make([]float32, tiler.Streams())
+		z := make([]float32, tiler.Streams())
+		miss := make([]bool, tiler.Streams())
+		var img = image.NewGray16(image.Rect(0, 0, sc.Width, sc.Height))
+		step := func() float64 {
+			if i >= 200 { // the change starts at frame 200: next noise seed
+				fresh.Seed++
+				i = m.Params.ReferenceFrames
+			}
+			fresh.FrameInto(img, i)
+			i++
+			frames.FromImage(img, &fr)
+			tiler.Means(&fr, raw)
+			idx := eng.Next()
+			vals := make([]float32, len(idx))
+			for k, j := range idx {
+				vals[k] = raw[j]
+			}
+			md.Standardize(z[:len(idx)], miss[:len(idx)], idx, vals)
+			u, err := eng.Step(z[:len(idx)], miss[:len(idx)])
+			if err != nil {
+				t.Fatal(err)
+			}
+			return u.G
+		}
+		for k := 0; k < burn; k++ {
+			step()
+		}
+		var counted, got int
+		for got < alarms {
+			n := 0
+			for {
+				n++
+				if step() >= h {
+					break
+				}
+			}
+			counted += n
+			got++
+			for k := 0; k < gap; k++ {
+				step()
+			}
+		}
+		a := float64(counted) / float64(got)
+		return out{a, a / math.Sqrt(float64(got)), got}
+	}
+	var wg sync.WaitGroup
+	var rb, rn out
+	wg.Add(2)
+	go func() { defer wg.Done(); rb = measure(hB, 1000) }()
+	go func() { defer wg.Done(); rn = measure(hN, 1000) }()
+	wg.Wait()
+	t.Logf("target ARL0 %g on fresh in-control furnace frames (%d alarms each, seeds from 1000):", target, alarms)
+	t.Logf("  bootstrap limit %.3f: ARL0 %.0f ± %.0f (%+.0f%% from the target)", hB, rb.arl, rb.se, 100*(rb.arl/target-1))
+	t.Logf("  normal    limit %.3f: ARL0 %.0f ± %.0f (%+.0f%% from the target)", hN, rn.arl, rn.se, 100*(rn.arl/target-1))
 }
