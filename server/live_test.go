@@ -1,0 +1,451 @@
+package server
+
+import (
+	"bytes"
+	"encoding/json"
+	"fmt"
+	"image"
+	"image/jpeg"
+	"net/http"
+	"net/http/httptest"
+	"os"
+	"path/filepath"
+	"strings"
+	"sync"
+	"sync/atomic"
+	"testing"
+	"time"
+
+	"github.com/gorilla/websocket"
+
+	"sparsewatch/samples"
+)
+
+// Live tests play the furnace demo scenario: its hot spot appears at frame
+// 200 around (214, 92). Frames are mapped to 8 bits with one fixed contrast
+// stretch (so JPEG keeps the noise) and the limit is fixed, so no test
+// waits for a calibration.
+const (
+	liveFrames    = 260
+	liveChange    = 200
+	liveParamsFix = `{"tile":4,"budget":"10%","shift":2,"reference_frames":50,"limit":160}`
+)
+
+var (
+	furnaceOnce sync.Once
+	furnaceJPEG [][]byte
+	furnaceErr  error
+)
+
+// furnaceJPEGs renders the scenario's first liveFrames frames as JPEG once.
+func furnaceJPEGs(t *testing.T) [][]byte {
+	t.Helper()
+	furnaceOnce.Do(func() {
+		sc, err := samples.Lookup("furnace")
+		if err != nil {
+			furnaceErr = err
+			return
+		}
+		var lo, hi uint32
+		for i := range liveFrames {
+			img, err := sc.Frame(i)
+			if err != nil {
+				furnaceErr = err
+				return
+			}
+			if i == 0 {
+				lo, hi = rangeOf(img)
+			}
+			var b bytes.Buffer
+			if err := jpeg.Encode(&b, to8(img, lo, hi), &jpeg.Options{Quality: 95}); err != nil {
+				furnaceErr = err
+				return
+			}
+			furnaceJPEG = append(furnaceJPEG, b.Bytes())
+		}
+	})
+	if furnaceErr != nil {
+		t.Fatal(furnaceErr)
+	}
+	return furnaceJPEG
+}
+
+func rangeOf(img image.Image) (lo, hi uint32) {
+	b := img.Bounds()
+	lo = 1<<32 - 1
+	for y := b.Min.Y; y < b.Max.Y; y++ {
+		for x := b.Min.X; x < b.Max.X; x++ {
+			v, _, _, _ := img.At(x, y).RGBA()
+			lo, hi = min(lo, v), max(hi, v)
+		}
+	}
+	return lo, hi
+}
+
+// to8 maps [lo, hi] of a 16-bit frame to 0..255.
+func to8(img image.Image, lo, hi uint32) *image.Gray {
+	b := img.Bounds()
+	g := image.NewGray(b)
+	for y := b.Min.Y; y < b.Max.Y; y++ {
+		for x := b.Min.X; x < b.Max.X; x++ {
+			v, _, _, _ := img.At(x, y).RGBA()
+			f := (float64(v) - float64(lo)) * 255 / float64(hi-lo)
+			g.Pix[(y-b.Min.Y)*g.Stride+x-b.Min.X] = uint8(max(0, min(255, f+0.5)))
+		}
+	}
+	return g
+}
+
+func (ts *testServer) createJSON(t *testing.T, body string) (int, createdResponse, string) {
+	t.Helper()
+	code, b := ts.do(t, "POST", "/api/sessions", "", "application/json", strings.NewReader(body))
+	var cr createdResponse
+	if code == http.StatusCreated {
+		if err := json.Unmarshal(b, &cr); err != nil {
+			t.Fatal(err)
+		}
+	}
+	return code, cr, string(b)
+}
+
+func (ts *testServer) status(t *testing.T, cr createdResponse) Status {
+	t.Helper()
+	code, b := ts.do(t, "GET", "/api/sessions/"+cr.ID, cr.OwnerToken, "", nil)
+	if code != http.StatusOK {
+		t.Fatalf("status: %d %s", code, b)
+	}
+	var st Status
+	if err := json.Unmarshal(b, &st); err != nil {
+		t.Fatal(err)
+	}
+	return st
+}
+
+// waitStatus polls the session until ok says yes, or fails after d.
+func (ts *testServer) waitStatus(t *testing.T, cr createdResponse, d time.Duration, what string, ok func(Status) bool) Status {
+	t.Helper()
+	end := time.Now().Add(d)
+	for {
+		st := ts.status(t, cr)
+		if ok(st) {
+			return st
+		}
+		if time.Now().After(end) || st.State == StateFailed {
+			b, _ := json.Marshal(st)
+			t.Fatalf("waiting for %s: %s", what, b)
+		}
+		time.Sleep(50 * time.Millisecond)
+	}
+}
+
+// checkPlanted asserts an alarm after the planted change (frames may have
+// been dropped, which lowers the frame numbers by at most that many) whose
+// first region covers the hot spot.
+func checkPlanted(t *testing.T, ts *testServer, cr createdResponse, dropped int) {
+	t.Helper()
+	sess, err := ts.Server.session(cr.ID)
+	if err != nil {
+		t.Fatal(err)
+	}
+	al := sess.Alarms()
+	if len(al) == 0 {
+		t.Fatal("no alarm")
+	}
+	a := al[0]
+	if a.Frame < liveChange-dropped || a.Frame > liveFrames {
+		t.Fatalf("first alarm at frame %d; change planted at %d (%d dropped)", a.Frame, liveChange, dropped)
+	}
+	if len(a.Regions) == 0 {
+		t.Fatalf("alarm at %d has no region", a.Frame)
+	}
+	b := a.Regions[0].BBox
+	if !(b[0] <= 214 && 214 <= b[2] && b[1] <= 92 && 92 <= b[3]) {
+		t.Fatalf("alarm region %v does not cover the hot spot (214, 92)", b)
+	}
+}
+
+// mjpegServer serves frames as multipart/x-mixed-replace on 127.0.0.1,
+// every gap. With cutAt > 0 the first connection ends after cutAt frames
+// and the next one goes on from there. Hits counts requests.
+type mjpegServer struct {
+	*httptest.Server
+	hits atomic.Int64
+	next atomic.Int64
+	quit chan struct{}
+}
+
+func newMJPEG(t *testing.T, frames [][]byte, gap time.Duration, cutAt int) *mjpegServer {
+	m := &mjpegServer{quit: make(chan struct{})}
+	var conns atomic.Int64
+	m.Server = httptest.NewServer(http.HandlerFunc(func(w http.ResponseWriter, r *http.Request) {
+		m.hits.Add(1)
+		conn := conns.Add(1)
+		w.Header().Set("Content-Type", "multipart/x-mixed-replace; boundary=frame")
+		fl := w.(http.Flusher)
+		for {
+			i := int(m.next.Load())
+			if i >= len(frames) {
+				break
+			}
+			if conn == 1 && cutAt > 0 && i >= cutAt {
+				return // the connection drops
+			}
+			fmt.Fprintf(w, "--frame\r\nContent-Type: image/jpeg\r\nContent-Length: %d\r\n\r\n", len(frames[i]))
+			w.Write(frames[i])
+			w.Write([]byte("\r\n"))
+			fl.Flush()
+			m.next.Add(1)
+			select {
+			case <-time.After(gap):
+			case <-r.Context().Done():
+				return
+			case <-m.quit:
+				return
+			}
+		}
+		select { // all sent: keep the stream open, as a camera would
+		case <-r.Context().Done():
+		case <-m.quit:
+		}
+	}))
+	t.Cleanup(func() { close(m.quit); m.Close() })
+	return m
+}
+
+// counter is a 127.0.0.1 server that must never be fetched.
+func counter(t *testing.T) (*httptest.Server, *atomic.Int64) {
+	var n atomic.Int64
+	s := httptest.NewServer(http.HandlerFunc(func(w http.ResponseWriter, r *http.Request) {
+		n.Add(1)
+		w.Header().Set("Content-Type", "image/jpeg")
+		w.Write([]byte("\xff\xd8\xff"))
+	}))
+	t.Cleanup(s.Close)
+	return s, &n
+}
+
+// TestCameraURLRefused: URLs outside the allow-list (another port of the
+// same host, another path, no list at all) get a 4xx naming the reason and
+// no request; a listed camera redirecting to an unlisted one ends the
+// session with the refusal, and the unlisted server is never asked.
+func TestCameraURLRefused(t *testing.T) {
+	listed, listedHits := counter(t)
+	unlisted, unlistedHits := counter(t)
+	redirector := httptest.NewServer(http.RedirectHandler(unlisted.URL+"/cam", http.StatusFound))
+	t.Cleanup(redirector.Close)
+
+	none := mustServer(t, Options{})
+	code, _, body := none.createJSON(t, `{"source":{"kind":"camera-url","url":"`+listed.URL+`/cam"}}`)
+	if code != http.StatusForbidden || !strings.Contains(body, "--allow-camera-url") {
+		t.Fatalf("no allow-list: %d %s; want 403 naming --allow-camera-url", code, body)
+	}
+
+	ts := mustServer(t, Options{AllowCameraURL: []string{listed.URL + "/cam/", redirector.URL + "/"}})
+	for _, c := range []struct{ url, reason string }{
+		{unlisted.URL + "/cam/1", "not under any allowed prefix"},
+		{listed.URL + "/other", "not under any allowed prefix"},
+		{listed.URL + "/cam/../other", "dot segments"},
+		{"file:///etc/passwd", "only http and https"},
+	} {
+		code, _, body := ts.createJSON(t, `{"source":{"kind":"camera-url","url":"`+c.url+`"}}`)
+		if code != http.StatusForbidden || !strings.Contains(body, c.reason) {
+			t.Errorf("%s: %d %s; want 403 saying %q", c.url, code, body, c.reason)
+		}
+	}
+	if listedHits.Load() != 0 || unlistedHits.Load() != 0 {
+		t.Fatalf("refused URLs were fetched: listed %d, unlisted %d requests", listedHits.Load(), unlistedHits.Load())
+	}
+
+	code, cr, body := ts.createJSON(t, `{"source":{"kind":"camera-url","url":"`+redirector.URL+`/cam"},"params":`+liveParamsFix+`}`)
+	if code != http.StatusCreated {
+		t.Fatalf("listed redirector: %d %s", code, body)
+	}
+	end := time.Now().Add(10 * time.Second)
+	var st Status
+	for st = ts.status(t, cr); st.State != StateFailed && time.Now().Before(end); st = ts.status(t, cr) {
+		time.Sleep(50 * time.Millisecond)
+	}
+	if st.State != StateFailed || !strings.Contains(st.Message, "not under any allowed prefix") {
+		t.Fatalf("redirect to an unlisted host: state %s, message %q; want failed with the refusal", st.State, st.Message)
+	}
+	if unlistedHits.Load() != 0 {
+		t.Fatalf("the unlisted redirect target was fetched %d times", unlistedHits.Load())
+	}
+}
+
+// TestLiveParamsPerHours: "one false alarm per N hours" at fps frames/s
+// becomes ARL0 = N x 3600 x fps, shown in the status; per_hours without fps
+// or with arl0 is refused.
+func TestLiveParamsPerHours(t *testing.T) {
+	root := t.TempDir()
+	ts := mustServer(t, Options{WatchRoot: root})
+	for _, bad := range []string{`{"per_hours":2}`, `{"fps":10}`, `{"per_hours":2,"fps":10,"arl0":500}`, `{"per_hours":-1,"fps":10}`} {
+		code, _, body := ts.createJSON(t, `{"source":{"kind":"browser-camera"},"params":`+bad+`}`)
+		if code != http.StatusBadRequest {
+			t.Errorf("params %s: %d %s; want 400", bad, code, body)
+		}
+	}
+	code, cr, body := ts.createJSON(t, `{"source":{"kind":"browser-camera"},"params":{"per_hours":2.5,"fps":12,"limit":160}}`)
+	if code != http.StatusCreated {
+		t.Fatalf("%d %s", code, body)
+	}
+	st := ts.waitStatus(t, cr, 5*time.Second, "live status", func(st Status) bool { return st.Live != nil })
+	if want := 2.5 * 3600 * 12; st.Params.ARL0 != want || st.Live.ARL0 != want || !strings.Contains(st.Live.ARL0Rule, "108000 frames") {
+		t.Fatalf("params arl0 %v, live arl0 %v, rule %q; want %v", st.Params.ARL0, st.Live.ARL0, st.Live.ARL0Rule, want)
+	}
+}
+
+// TestCameraURLSession: a listed MJPEG camera on 127.0.0.1 plays the
+// furnace scenario; its connection drops after 120 frames. The session
+// reconnects, learns, watches and raises the alarm on the planted hot spot.
+func TestCameraURLSession(t *testing.T) {
+	frames := furnaceJPEGs(t)
+	cam := newMJPEG(t, frames, 3*time.Millisecond, 120)
+	ts := mustServer(t, Options{AllowCameraURL: []string{cam.URL + "/"}})
+	code, cr, body := ts.createJSON(t, `{"source":{"kind":"camera-url","url":"`+cam.URL+`/stream"},"params":`+liveParamsFix+`}`)
+	if code != http.StatusCreated {
+		t.Fatalf("%d %s", code, body)
+	}
+	st := ts.waitStatus(t, cr, 30*time.Second, "the alarm", func(st Status) bool { return st.Alarms > 0 })
+	l := st.Live
+	if l == nil || l.Kind != kindCameraURL {
+		t.Fatalf("no live status: %+v", st)
+	}
+	if l.Reconnects < 1 || cam.hits.Load() < 2 {
+		t.Fatalf("dropped connection: %d reconnects, %d requests; want a reconnect", l.Reconnects, cam.hits.Load())
+	}
+	if l.FramesIn < liveChange || l.FramesMonitored == 0 || l.LatencyMedian <= 0 || l.LatencyP95 < l.LatencyMedian {
+		t.Fatalf("live counters: %+v", *l)
+	}
+	t.Logf("live: in %d, monitored %d, dropped %d, reconnects %d, latency median %.1f ms, p95 %.1f ms",
+		l.FramesIn, l.FramesMonitored, l.Dropped, l.Reconnects, l.LatencyMedian, l.LatencyP95)
+	checkPlanted(t, ts, cr, int(l.Dropped))
+}
+
+// TestFolderSession: a folder inside --watch-root receives the scenario's
+// frames a few at a time; each is monitored as it appears and the planted
+// change raises the alarm. Folders outside the root are refused unread.
+func TestFolderSession(t *testing.T) {
+	frames := furnaceJPEGs(t)
+	root := t.TempDir()
+	outside := t.TempDir()
+	if err := os.Mkdir(filepath.Join(root, "cam"), 0o755); err != nil {
+		t.Fatal(err)
+	}
+	if err := os.Symlink(outside, filepath.Join(root, "escape")); err != nil {
+		t.Fatal(err)
+	}
+	ts := mustServer(t, Options{WatchRoot: root})
+	for _, p := range []string{outside, "../", "escape"} {
+		b, _ := json.Marshal(p)
+		code, _, body := ts.createJSON(t, `{"source":{"kind":"folder","path":`+string(b)+`}}`)
+		if code != http.StatusForbidden || !strings.Contains(body, "outside the watched-folder root") {
+			t.Errorf("path %q: %d %s; want 403 outside the root", p, code, body)
+		}
+	}
+	none := mustServer(t, Options{})
+	if code, _, body := none.createJSON(t, `{"source":{"kind":"folder","path":"cam"}}`); code != http.StatusForbidden || !strings.Contains(body, "--watch-root") {
+		t.Errorf("no root: %d %s; want 403 naming --watch-root", code, body)
+	}
+
+	code, cr, body := ts.createJSON(t, `{"source":{"kind":"folder","path":"cam"},"params":`+liveParamsFix+`}`)
+	if code != http.StatusCreated {
+		t.Fatalf("%d %s", code, body)
+	}
+	for i, f := range frames {
+		if err := os.WriteFile(filepath.Join(root, "cam", fmt.Sprintf("frame%d.jpg", i)), f, 0o644); err != nil {
+			t.Fatal(err)
+		}
+		if i%40 == 39 {
+			time.Sleep(100 * time.Millisecond)
+		}
+	}
+	st := ts.waitStatus(t, cr, 30*time.Second, "the alarm", func(st Status) bool { return st.Alarms > 0 })
+	if st.Live == nil || st.Live.Dropped != 0 {
+		t.Fatalf("a watched folder waits instead of dropping: %+v", st.Live)
+	}
+	checkPlanted(t, ts, cr, 0)
+}
+
+// TestBrowserCameraIngest: the owner's binary websocket messages feed a
+// browser-camera session; a viewer's are ignored.
+func TestBrowserCameraIngest(t *testing.T) {
+	frames := furnaceJPEGs(t)
+	ts := mustServer(t, Options{})
+	code, cr, body := ts.createJSON(t, `{"source":{"kind":"browser-camera"},"params":`+liveParamsFix+`}`)
+	if code != http.StatusCreated {
+		t.Fatalf("%d %s", code, body)
+	}
+	dial := func(tok string) *websocket.Conn {
+		c, _, err := dialWS(t, ts, cr.ID, tok, nil)
+		if err != nil {
+			t.Fatal(err)
+		}
+		go func() { // drain the server's messages
+			for {
+				if _, _, err := c.ReadMessage(); err != nil {
+					return
+				}
+			}
+		}()
+		t.Cleanup(func() { c.Close() })
+		return c
+	}
+	viewer := dial(cr.ShareToken)
+	for _, f := range frames[:10] {
+		if err := viewer.WriteMessage(websocket.BinaryMessage, f); err != nil {
+			t.Fatal(err)
+		}
+	}
+	// A text message after the frames: once the owner's status shows the
+	// server read it, the viewer's frames were read too.
+	viewer.WriteMessage(websocket.TextMessage, []byte(`{"type":"heat","on":true}`))
+	time.Sleep(300 * time.Millisecond)
+	st := ts.waitStatus(t, cr, 5*time.Second, "live status", func(st Status) bool { return st.Live != nil })
+	if st.Live.FramesIn != 0 {
+		t.Fatalf("a viewer's frames were taken: %d in", st.Live.FramesIn)
+	}
+	owner := dial(cr.OwnerToken)
+	for _, f := range frames {
+		if err := owner.WriteMessage(websocket.BinaryMessage, f); err != nil {
+			t.Fatal(err)
+		}
+		time.Sleep(2 * time.Millisecond)
+	}
+	st = ts.waitStatus(t, cr, 30*time.Second, "the alarm", func(st Status) bool { return st.Alarms > 0 })
+	if st.Live.FramesIn != uint64(len(frames)) {
+		t.Fatalf("frames in %d, sent %d", st.Live.FramesIn, len(frames))
+	}
+	checkPlanted(t, ts, cr, int(st.Live.Dropped))
+}
+
+// TestStdinSession: a session fed from a stream of concatenated JPEGs (as
+// serve --stdin-frames gives it standard input) reviews to the end of the
+// stream and raises the alarm on the planted change.
+func TestStdinSession(t *testing.T) {
+	frames := furnaceJPEGs(t)
+	ts := mustServer(t, Options{})
+	var in bytes.Buffer
+	for _, f := range frames {
+		in.Write(f)
+	}
+	url, err := ts.CreateStdinSession(&in, "", json.RawMessage(liveParamsFix))
+	if err != nil {
+		t.Fatal(err)
+	}
+	var cr createdResponse
+	for _, st := range ts.list() {
+		sess, _ := ts.Server.session(st.ID)
+		if m := sess.metaCopy(); m.Source.Kind == kindStdin && strings.Contains(url, m.OwnerToken) {
+			cr = createdResponse{ID: st.ID, OwnerToken: m.OwnerToken}
+		}
+	}
+	if cr.ID == "" {
+		t.Fatalf("no stdin session for owner URL %s", url)
+	}
+	st := ts.waitStatus(t, cr, 30*time.Second, "the end of input", func(st Status) bool { return st.State == StateFinished })
+	if st.Live == nil || st.Live.FramesIn != uint64(len(frames)) || st.Live.Dropped != 0 {
+		t.Fatalf("a pipe waits instead of dropping: %+v", st.Live)
+	}
+	checkPlanted(t, ts, cr, 0)
+}
