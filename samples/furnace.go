@@ -13,7 +13,7 @@ import (
 const (
 	furnaceW, furnaceH = 320, 240
 	furnaceFrames      = 400
-	furnaceRef         = 50
+	furnaceRef         = 150
 	furnaceChange      = 200
 
 	wienC2     = 14388.0 // µm K

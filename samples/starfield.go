@@ -11,7 +11,7 @@ import (
 const (
 	starW, starH  = 512, 512
 	starFrames    = 400
-	starRef       = 50
+	starRef       = 150
 	starChange    = 210
 	starRise      = 12  // frames from first light to full brightness
 	starHoldUntil = 250 // first frame of the fade
