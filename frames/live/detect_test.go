@@ -19,10 +19,10 @@ import (
 // 3% budget and a limit calibrated for ARL0 = 10^4 frames.
 const (
 	e2eTile = 4
-	// 150 reference frames rather than the suggested 50: the limit is
-	// calibrated for exactly standard-normal z, and with 50 frames the
-	// per-tile mean and scale errors alone (z variance up to 2.6 over 4800
-	// tiles, measured) bring false alarms within 100 frames.
+	// The scenario's suggested 150 reference frames (checked below): the
+	// limit is calibrated for exactly standard-normal z, and with 50 frames
+	// the per-tile mean and scale errors alone (z variance up to 2.6 over
+	// 4800 tiles, measured) bring false alarms within 100 frames.
 	e2eRef = 150
 )
 
@@ -62,6 +62,9 @@ func skipLong(t *testing.T) {
 func detect(t *testing.T, s samples.Scenario, last int, next func() (Frame, bool)) {
 	t.Helper()
 	tr := s.Truth()
+	if s.ReferenceFrames != e2eRef {
+		t.Errorf("scenario suggests %d reference frames, the test learns from %d", s.ReferenceFrames, e2eRef)
+	}
 	tiler, err := frames.NewTiler(s.Width, s.Height, e2eTile)
 	if err != nil {
 		t.Fatal(err)
