@@ -76,7 +76,10 @@ func New(cfg Config) (*Engine, error) {
 		rng:    rand.New(rand.NewPCG(cfg.Seed, cfg.Seed^0x9e3779b97f4a7c15)),
 		limit:  cfg.Limit,
 	}
-	if cfg.Policy == Full {
+	if cfg.Policy == Full || cfg.Policy == Oracle {
+		// Every stream read (full), or only the changed ones on purpose
+		// (oracle): unread streams get no compensation, else they would
+		// climb without end and the bound would be meaningless.
 		e.c = 0
 	}
 	e.sweepLen = (m + e.q - 1) / e.q
