@@ -1540,7 +1540,8 @@
     const y0 = Math.floor(ly(lo) * 2) / 2, y1 = Math.ceil(ly(hi * 1.05) * 2) / 2 || 1;
     const xT = (b) => logX ? Math.log10(b) : b;
     const xa = xT(xs[0]), xb = xs.length > 1 ? xT(xs[xs.length - 1]) : xa + 1;
-    const X = (b) => xs.length > 1 ? ml + (xT(b) - xa) / (xb - xa) * (W - ml - mr) : ml + (W - ml - mr) / 2;
+    const pad = 16; // keep the end points off the axes
+    const X = (b) => xs.length > 1 ? ml + pad + (xT(b) - xa) / (xb - xa) * (W - ml - mr - 2 * pad) : ml + (W - ml - mr) / 2;
     const Y = (v) => mt + (1 - (ly(v) - y0) / Math.max(y1 - y0, 1e-9)) * (H - mt - mb);
     const NS = "http://www.w3.org/2000/svg";
     const el = (name, attrs, text) => {
@@ -1567,7 +1568,7 @@
     const target = rec.request && rec.request.target_delay;
     if (target > 0 && ly(target) >= y0 && ly(target) <= y1) {
       svg.appendChild(el("line", { x1: ml, y1: Y(target), x2: W - mr, y2: Y(target), stroke: "#2f7d4f", "stroke-dasharray": "2 3" }));
-      svg.appendChild(el("text", { x: W - mr + 4, y: Y(target) + 4, "font-size": 11, fill: "#2f7d4f" }, "accepted: " + target));
+      svg.appendChild(el("text", { x: ml + 6, y: Y(target) - 4, "font-size": 11, fill: "#2f7d4f" }, "longest accepted delay: " + target));
     }
     const pols = [...new Set(ok.map((r) => r.policy))];
     let points = 0, legendY = mt + 10;
