@@ -6,6 +6,7 @@ import (
 	"errors"
 	"os"
 	"path/filepath"
+	"time"
 
 	"sparsewatch/frames"
 	"sparsewatch/monitor"
@@ -171,6 +172,14 @@ func (s *Session) hooks(ctx context.Context, cancel context.CancelFunc, rp revie
 				b := ev.Tiler.PixelBox(r.X0, r.Y0, r.X1, r.Y1)
 				boxes = append(boxes, box{b[0], b[1], b[2], b[3], r.Peak})
 			}
+			if s.hub.heat.Load() > 0 && ev.Local != nil && time.Since(s.heatAt) >= heatEvery {
+				// Heat images for the viewers that asked: at most a few a
+				// second, since reading every stream's statistic is O(m).
+				s.heatAt = time.Now()
+				s.heatBuf = ev.Local(s.heatBuf)
+				t := ev.Tiler
+				s.hub.publish(msgHeat, encodeHeat(ev.Index, s.heatBuf, t.W, t.H, u.Limit))
+			}
 			s.hookErr = s.onFrame(ctx, frameUpdate{
 				Frame: ev.Index, Name: ev.Name, G: u.G, Limit: u.Limit, Alarm: u.State == monitor.Alarming,
 				Read: u.Read, Regions: boxes, PixelsRead: ev.PixelsRead,
@@ -232,3 +241,6 @@ func saveCalibration(dir string, rp review.Params, cal monitor.Calibration) {
 		writeFileSync(filepath.Join(dir, calibrationFile), data)
 	}
 }
+
+// heatEvery is the shortest gap between two heat images of a session.
+const heatEvery = 250 * time.Millisecond

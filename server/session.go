@@ -113,8 +113,10 @@ type Session struct {
 
 	// Owned by the review goroutine.
 	run         *runState
-	resumeAfter int   // frames <= resumeAfter are already in stats.csv: replay them silently
-	hookErr     error // first persistence error inside a review hook
+	resumeAfter int       // frames <= resumeAfter are already in stats.csv: replay them silently
+	hookErr     error     // first persistence error inside a review hook
+	heatAt      time.Time // last heat image sent (review goroutine only)
+	heatBuf     []float32
 
 	previews *previewer
 
@@ -593,6 +595,10 @@ func (s *Session) pace(ctx context.Context) error {
 // alarms.jsonl unless a previous process logged it already, then sent to
 // the viewers.
 func (s *Session) onAlarm(a reportAlarm) error {
+	// The review reuses its region slices while the episode is on; keep
+	// copies, which viewers and the API read from other goroutines.
+	a.Regions = append([]review.Region(nil), a.Regions...)
+	a.StartRegions = append([]review.Region(nil), a.StartRegions...)
 	ev := "start"
 	if a.EndFrame >= 0 {
 		ev = "end"

@@ -40,6 +40,9 @@ type FrameEvent struct {
 	Total  int    // frames expected in the sequence, -1 unknown
 	Update *monitor.Update
 	Tiler  *frames.Tiler
+	// Local writes every stream's current local statistic into dst (grown
+	// if short) for heat views; O(m), so call it at a bounded rate.
+	Local func(dst []float32) []float32
 	// PixelsRead and BytesRead are this frame's; the totals run over the whole run.
 	PixelsRead, BytesRead           int64
 	TotalPixelsRead, TotalBytesRead int64
@@ -416,7 +419,7 @@ func (rv *reviewer) step(ri int, r *run, it frames.Item) error {
 	}
 	if rv.h.Frame != nil {
 		rv.h.Frame(FrameEvent{Run: ri, Policy: r.p.Policy, Index: it.Index, Name: it.Name, Total: rv.total, Update: &upd,
-			Tiler: rv.tiler, PixelsRead: px, BytesRead: nb, TotalPixelsRead: rv.refPixels + r.pixels, TotalBytesRead: rv.refBytes + r.bytes})
+			Tiler: rv.tiler, Local: r.eng.Local, PixelsRead: px, BytesRead: nb, TotalPixelsRead: rv.refPixels + r.pixels, TotalBytesRead: rv.refBytes + r.bytes})
 	}
 	return nil
 }
