@@ -158,9 +158,11 @@ func checkPlanted(t *testing.T, ts *testServer, cr createdResponse, dropped int)
 	if len(a.Regions) == 0 {
 		t.Fatalf("alarm at %d has no region", a.Frame)
 	}
+	// The spot has radius 3 px at onset (8 px when grown); a region raised
+	// early may hold only the tiles at its edge.
 	b := a.Regions[0].BBox
-	if !(b[0] <= 214 && 214 <= b[2] && b[1] <= 92 && 92 <= b[3]) {
-		t.Fatalf("alarm region %v does not cover the hot spot (214, 92)", b)
+	if near := 6; !(b[0]-near <= 214 && 214 <= b[2]+near && b[1]-near <= 92 && 92 <= b[3]+near) {
+		t.Fatalf("alarm region %v is not at the hot spot (214, 92)", b)
 	}
 }
 
@@ -174,7 +176,7 @@ type mjpegServer struct {
 	quit chan struct{}
 }
 
-func newMJPEG(t *testing.T, frames [][]byte, gap time.Duration, cutAt int) *mjpegServer {
+func newMJPEG(t *testing.T, frames [][]byte, gap time.Duration, cutAt int, ready func(i int) bool) *mjpegServer {
 	m := &mjpegServer{quit: make(chan struct{})}
 	var conns atomic.Int64
 	m.Server = httptest.NewServer(http.HandlerFunc(func(w http.ResponseWriter, r *http.Request) {
@@ -189,6 +191,9 @@ func newMJPEG(t *testing.T, frames [][]byte, gap time.Duration, cutAt int) *mjpe
 			}
 			if conn == 1 && cutAt > 0 && i >= cutAt {
 				return // the connection drops
+			}
+			for end := time.Now().Add(10 * time.Second); !ready(i) && time.Now().Before(end); {
+				time.Sleep(2 * time.Millisecond)
 			}
 			fmt.Fprintf(w, "--frame\r\nContent-Type: image/jpeg\r\nContent-Length: %d\r\n\r\n", len(frames[i]))
 			w.Write(frames[i])
@@ -300,12 +305,21 @@ func TestLiveParamsPerHours(t *testing.T) {
 // reconnects, learns, watches and raises the alarm on the planted hot spot.
 func TestCameraURLSession(t *testing.T) {
 	frames := furnaceJPEGs(t)
-	cam := newMJPEG(t, frames, 3*time.Millisecond, 120)
+	// The camera goes no faster than the review takes frames, so that the
+	// race detector's slowdown does not turn into drops.
+	var sess atomic.Pointer[Session]
+	ready := func(i int) bool { s := sess.Load(); return s != nil && s.Status().FramesSeen >= i-2 }
+	cam := newMJPEG(t, frames, time.Millisecond, 120, ready)
 	ts := mustServer(t, Options{AllowCameraURL: []string{cam.URL + "/"}})
 	code, cr, body := ts.createJSON(t, `{"source":{"kind":"camera-url","url":"`+cam.URL+`/stream"},"params":`+liveParamsFix+`}`)
 	if code != http.StatusCreated {
 		t.Fatalf("%d %s", code, body)
 	}
+	s, err := ts.Server.session(cr.ID)
+	if err != nil {
+		t.Fatal(err)
+	}
+	sess.Store(s)
 	st := ts.waitStatus(t, cr, 30*time.Second, "the alarm", func(st Status) bool { return st.Alarms > 0 })
 	l := st.Live
 	if l == nil || l.Kind != kindCameraURL {
@@ -397,22 +411,28 @@ func TestBrowserCameraIngest(t *testing.T) {
 			t.Fatal(err)
 		}
 	}
-	// A text message after the frames: once the owner's status shows the
-	// server read it, the viewer's frames were read too.
-	viewer.WriteMessage(websocket.TextMessage, []byte(`{"type":"heat","on":true}`))
+	// The viewer's frames are read in order before this text message,
+	// which the server ignores; then give the review time to take them.
+	viewer.WriteMessage(websocket.TextMessage, []byte(`{"type":"no-such-request"}`))
 	time.Sleep(300 * time.Millisecond)
 	st := ts.waitStatus(t, cr, 5*time.Second, "live status", func(st Status) bool { return st.Live != nil })
 	if st.Live.FramesIn != 0 {
 		t.Fatalf("a viewer's frames were taken: %d in", st.Live.FramesIn)
 	}
 	owner := dial(cr.OwnerToken)
-	for _, f := range frames {
+	for i, f := range frames {
+		// Send like a page that keeps at most a few frames in flight
+		// (the race detector slows the review many times over).
+		for end := time.Now().Add(10 * time.Second); ts.status(t, cr).FramesSeen < i-2 && time.Now().Before(end); {
+			time.Sleep(2 * time.Millisecond)
+		}
 		if err := owner.WriteMessage(websocket.BinaryMessage, f); err != nil {
 			t.Fatal(err)
 		}
-		time.Sleep(2 * time.Millisecond)
 	}
-	st = ts.waitStatus(t, cr, 30*time.Second, "the alarm", func(st Status) bool { return st.Alarms > 0 })
+	st = ts.waitStatus(t, cr, 30*time.Second, "the alarm and every frame in", func(st Status) bool {
+		return st.Alarms > 0 && st.Live.FramesIn >= uint64(len(frames))
+	})
 	if st.Live.FramesIn != uint64(len(frames)) {
 		t.Fatalf("frames in %d, sent %d", st.Live.FramesIn, len(frames))
 	}
