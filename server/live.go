@@ -448,7 +448,7 @@ func (s *Server) createLive(kind, url, path, name string, raw json.RawMessage) (
 			return nil, errorf(KindForbidden, "camera URL refused: %v", err)
 		}
 	case kindFolder:
-		if _, err := s.openFolder(cfg, false); err != nil {
+		if _, err := s.openFolder(cfg, false, nil); err != nil {
 			return nil, err
 		}
 	case kindBrowserCamera:
@@ -482,7 +482,7 @@ func (s *Server) newLiveSession(name string, cfg liveConfig, p Params, pipe *liv
 }
 
 // openFolder checks (and opens) a watched folder inside the operator's root.
-func (s *Server) openFolder(cfg liveConfig, skipExisting bool) (*live.Folder, error) {
+func (s *Server) openFolder(cfg liveConfig, skipExisting bool, events func(live.Event)) (*live.Folder, error) {
 	if s.opt.WatchRoot == "" {
 		return nil, errorf(KindForbidden, "the server watches no folders (start it with --watch-root DIR)")
 	}
@@ -491,7 +491,7 @@ func (s *Server) openFolder(cfg liveConfig, skipExisting bool) (*live.Folder, er
 	}
 	f, err := live.NewFolder(live.FolderConfig{
 		Root: s.opt.WatchRoot, Dir: cfg.Path, SkipExisting: skipExisting,
-		Interval: 200 * time.Millisecond, Logger: s.log,
+		Interval: 200 * time.Millisecond, Logger: s.log, Events: events,
 	})
 	var out *live.OutsideRootError
 	switch {
@@ -530,6 +530,9 @@ func (sess *Session) feedOf() (*liveFeed, error) {
 		}
 		sess.srv.mu.RUnlock()
 	}
+	sess.feed.mu.Lock()
+	sess.feed.arl0 = sess.meta.Params.ARL0 // liveReview sets it again for each run
+	sess.feed.mu.Unlock()
 	return sess.feed, nil
 }
 
@@ -554,13 +557,21 @@ func liveReview(ctx context.Context, s *Session) (*Report, error) {
 	var wait sync.WaitGroup
 	defer wait.Wait()
 	defer cancel()
+	// Parts and files the source skipped (corrupt, cut short, too large)
+	// are listed with the session's frame errors.
+	events := func(e live.Event) {
+		feed.event(e)
+		if e.Kind == live.EventBadFrame && e.Err != nil {
+			s.frameError("", -1, e.Err)
+		}
+	}
 	switch feed.cfg.Kind {
 	case kindCameraURL:
 		allow, err := s.srv.cameraAllow()
 		if err != nil {
 			return nil, err
 		}
-		cam, err := live.NewCamera(live.CameraConfig{URL: feed.cfg.URL, Allow: allow, Events: feed.event, Logger: s.log,
+		cam, err := live.NewCamera(live.CameraConfig{URL: feed.cfg.URL, Allow: allow, Events: events, Logger: s.log,
 			MinBackoff: 100 * time.Millisecond, MaxBackoff: 5 * time.Second})
 		if err != nil {
 			return nil, errorf(KindForbidden, "%s", trimPrefix(err.Error()))
@@ -572,7 +583,7 @@ func liveReview(ctx context.Context, s *Session) (*Report, error) {
 		ls.next = fromLive(rctx, cam.Frames())
 		ls.end = func() error { wait.Wait(); return runErr }
 	case kindFolder:
-		f, err := s.srv.openFolder(feed.cfg, resumed)
+		f, err := s.srv.openFolder(feed.cfg, resumed, events)
 		if err != nil {
 			return nil, err
 		}
@@ -638,7 +649,10 @@ func (sess *Session) ingest(ctx context.Context, data []byte) {
 	if err != nil {
 		return
 	}
-	feed.push(ctx, pushed{name: "camera", data: slices.Clone(data), arrived: time.Now()})
+	feed.mu.Lock()
+	name := fmt.Sprintf("camera#%d", feed.in)
+	feed.mu.Unlock()
+	feed.push(ctx, pushed{name: name, data: slices.Clone(data), arrived: time.Now()})
 }
 
 // pipeEnd is why a pipe ended: nil at a clean end of input.

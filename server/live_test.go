@@ -167,7 +167,8 @@ func checkPlanted(t *testing.T, ts *testServer, cr createdResponse, dropped int)
 }
 
 // mjpegServer serves frames as multipart/x-mixed-replace on 127.0.0.1,
-// every gap. With cutAt > 0 the first connection ends after cutAt frames
+// every gap, sending a part cut short before frame corruptAt (-1 none).
+// With cutAt > 0 the first connection ends after cutAt frames
 // and the next one goes on from there. Hits counts requests.
 type mjpegServer struct {
 	*httptest.Server
@@ -176,7 +177,7 @@ type mjpegServer struct {
 	quit chan struct{}
 }
 
-func newMJPEG(t *testing.T, frames [][]byte, gap time.Duration, cutAt int, ready func(i int) bool) *mjpegServer {
+func newMJPEG(t *testing.T, frames [][]byte, gap time.Duration, cutAt, corruptAt int, ready func(i int) bool) *mjpegServer {
 	m := &mjpegServer{quit: make(chan struct{})}
 	var conns atomic.Int64
 	m.Server = httptest.NewServer(http.HandlerFunc(func(w http.ResponseWriter, r *http.Request) {
@@ -194,6 +195,12 @@ func newMJPEG(t *testing.T, frames [][]byte, gap time.Duration, cutAt int, ready
 			}
 			for end := time.Now().Add(10 * time.Second); !ready(i) && time.Now().Before(end); {
 				time.Sleep(2 * time.Millisecond)
+			}
+			if i == corruptAt && conn == 1 { // a part cut short: reported and skipped
+				half := frames[i][:len(frames[i])/2]
+				fmt.Fprintf(w, "--frame\r\nContent-Type: image/jpeg\r\nContent-Length: %d\r\n\r\n", len(half))
+				w.Write(half)
+				w.Write([]byte("\r\n"))
 			}
 			fmt.Fprintf(w, "--frame\r\nContent-Type: image/jpeg\r\nContent-Length: %d\r\n\r\n", len(frames[i]))
 			w.Write(frames[i])
@@ -301,7 +308,8 @@ func TestLiveParamsPerHours(t *testing.T) {
 }
 
 // TestCameraURLSession: a listed MJPEG camera on 127.0.0.1 plays the
-// furnace scenario; its connection drops after 120 frames. The session
+// furnace scenario; one part is cut short and its connection drops after
+// 120 frames. The session
 // reconnects, learns, watches and raises the alarm on the planted hot spot.
 func TestCameraURLSession(t *testing.T) {
 	frames := furnaceJPEGs(t)
@@ -309,7 +317,7 @@ func TestCameraURLSession(t *testing.T) {
 	// race detector's slowdown does not turn into drops.
 	var sess atomic.Pointer[Session]
 	ready := func(i int) bool { s := sess.Load(); return s != nil && s.Status().FramesSeen >= i-2 }
-	cam := newMJPEG(t, frames, time.Millisecond, 120, ready)
+	cam := newMJPEG(t, frames, time.Millisecond, 120, 30, ready)
 	ts := mustServer(t, Options{AllowCameraURL: []string{cam.URL + "/"}})
 	code, cr, body := ts.createJSON(t, `{"source":{"kind":"camera-url","url":"`+cam.URL+`/stream"},"params":`+liveParamsFix+`}`)
 	if code != http.StatusCreated {
@@ -330,6 +338,9 @@ func TestCameraURLSession(t *testing.T) {
 	}
 	if l.FramesIn < liveChange || l.FramesMonitored == 0 || l.LatencyMedian <= 0 || l.LatencyP95 < l.LatencyMedian {
 		t.Fatalf("live counters: %+v", *l)
+	}
+	if l.Bad != 1 || len(st.Errors) != 1 || !strings.Contains(st.Errors[0].Message, "end-of-image") {
+		t.Fatalf("the part cut short: %d bad, errors %+v; want one, listed", l.Bad, st.Errors)
 	}
 	t.Logf("live: in %d, monitored %d, dropped %d, reconnects %d, latency median %.1f ms, p95 %.1f ms",
 		l.FramesIn, l.FramesMonitored, l.Dropped, l.Reconnects, l.LatencyMedian, l.LatencyP95)
