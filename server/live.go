@@ -506,6 +506,11 @@ func (s *Server) openFolder(cfg liveConfig, skipExisting bool, events func(live.
 // feedOf returns the session's live feed, made from live.json on first need
 // (a session resumed after a restart).
 func (sess *Session) feedOf() (*liveFeed, error) {
+	// The server's lock is taken before (never inside) the session's, as
+	// everywhere else.
+	sess.srv.mu.RLock()
+	stdinID, stdinFeed := sess.srv.stdinID, sess.srv.stdinFeed
+	sess.srv.mu.RUnlock()
 	sess.mu.Lock()
 	defer sess.mu.Unlock()
 	if sess.feed != nil {
@@ -524,11 +529,9 @@ func (sess *Session) feedOf() (*liveFeed, error) {
 		// Only the session made by this process reads its standard input;
 		// one left by an earlier process has no feed (q stays nil).
 		sess.feed.q = nil
-		sess.srv.mu.RLock()
-		if sess.srv.stdinID == sess.meta.ID {
-			sess.feed = sess.srv.stdinFeed
+		if stdinID == sess.meta.ID {
+			sess.feed = stdinFeed
 		}
-		sess.srv.mu.RUnlock()
 	}
 	sess.feed.mu.Lock()
 	sess.feed.arl0 = sess.meta.Params.ARL0 // liveReview sets it again for each run

@@ -6,10 +6,12 @@ import (
 	"fmt"
 	"image"
 	"image/jpeg"
+	"math/rand/v2"
 	"net/http"
 	"net/http/httptest"
 	"os"
 	"path/filepath"
+	"strconv"
 	"strings"
 	"sync"
 	"sync/atomic"
@@ -479,4 +481,67 @@ func TestStdinSession(t *testing.T) {
 		t.Fatalf("a pipe waits instead of dropping: %+v", st.Live)
 	}
 	checkPlanted(t, ts, cr, 0)
+}
+
+// TestLiveRate measures a 640 x 480 MJPEG camera at 30 frames/s with a 3%
+// budget: frames in, monitored, dropped and the latency from arrival to
+// the engine's update. It runs only with SPARSEWATCH_LIVE_RATE=SECONDS
+// (the machine is shared; the regular suite stays short).
+func TestLiveRate(t *testing.T) {
+	secs, _ := strconv.Atoi(os.Getenv("SPARSEWATCH_LIVE_RATE"))
+	if secs <= 0 {
+		t.Skip("set SPARSEWATCH_LIVE_RATE=SECONDS to measure")
+	}
+	const w, h, fps = 640, 480, 30
+	rng := rand.New(rand.NewPCG(1, 2))
+	var pool [][]byte
+	for range 16 {
+		g := image.NewGray(image.Rect(0, 0, w, h))
+		for i := range g.Pix {
+			g.Pix[i] = uint8(100 + rng.NormFloat64()*8)
+		}
+		var b bytes.Buffer
+		if err := jpeg.Encode(&b, g, &jpeg.Options{Quality: 90}); err != nil {
+			t.Fatal(err)
+		}
+		pool = append(pool, b.Bytes())
+	}
+	var sent atomic.Int64
+	stop := make(chan struct{})
+	cam := httptest.NewServer(http.HandlerFunc(func(rw http.ResponseWriter, r *http.Request) {
+		rw.Header().Set("Content-Type", "multipart/x-mixed-replace; boundary=frame")
+		tick := time.NewTicker(time.Second / fps)
+		defer tick.Stop()
+		for i := 0; ; i++ {
+			f := pool[i%len(pool)]
+			fmt.Fprintf(rw, "--frame\r\nContent-Type: image/jpeg\r\nContent-Length: %d\r\n\r\n", len(f))
+			rw.Write(f)
+			rw.Write([]byte("\r\n"))
+			rw.(http.Flusher).Flush()
+			sent.Add(1)
+			select {
+			case <-tick.C:
+			case <-r.Context().Done():
+				return
+			case <-stop:
+				return
+			}
+		}
+	}))
+	t.Cleanup(func() { close(stop); cam.Close() })
+	ts := mustServer(t, Options{AllowCameraURL: []string{cam.URL + "/"}})
+	code, cr, body := ts.createJSON(t, `{"source":{"kind":"camera-url","url":"`+cam.URL+`/"},"params":{"budget":"3%","reference_frames":30,"limit":60}}`)
+	if code != http.StatusCreated {
+		t.Fatalf("%d %s", code, body)
+	}
+	ts.waitStatus(t, cr, 60*time.Second, "watching", func(st Status) bool { return st.Live != nil && st.Live.FramesMonitored > 0 })
+	first := ts.status(t, cr).Live
+	time.Sleep(time.Duration(secs) * time.Second)
+	l := ts.status(t, cr).Live
+	in, mon, drop := l.FramesIn-first.FramesIn, l.FramesMonitored-first.FramesMonitored, l.Dropped-first.Dropped
+	t.Logf("640x480 at %d fps, 3%% budget, %d s watched: in %d (%.1f/s), monitored %d (%.1f/s), dropped %d, latency median %.1f ms, p95 %.1f ms (last %d frames)",
+		fps, secs, in, float64(in)/float64(secs), mon, float64(mon)/float64(secs), drop, l.LatencyMedian, l.LatencyP95, min(mon, latencySamples))
+	if in == 0 || mon+drop > in+ingestQueue+1 || l.LatencyP95 < l.LatencyMedian {
+		t.Fatalf("inconsistent counts: %+v", *l)
+	}
 }
