@@ -178,7 +178,7 @@ func (s *Session) hooks(ctx context.Context, cancel context.CancelFunc, rp revie
 				s.heatAt = time.Now()
 				s.heatBuf = ev.Local(s.heatBuf)
 				t := ev.Tiler
-				s.hub.publish(msgHeat, encodeHeat(ev.Index, s.heatBuf, t.W, t.H, u.Limit))
+				s.hub.publish(msgHeat, encodeHeat(ev.Index, s.heatBuf, t.GW, t.GH, u.Limit))
 			}
 			s.hookErr = s.onFrame(ctx, frameUpdate{
 				Frame: ev.Index, Name: ev.Name, G: u.G, Limit: u.Limit, Alarm: u.State == monitor.Alarming,
