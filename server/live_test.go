@@ -545,3 +545,52 @@ func TestLiveRate(t *testing.T) {
 		t.Fatalf("inconsistent counts: %+v", *l)
 	}
 }
+
+// TestFolderSessionResumes: a watched-folder session survives a server
+// restart. The new process skips the files present when it starts, numbers new
+// frames after the last one logged, learns its reference again from the
+// new files and finds the planted change where the file numbers say.
+func TestFolderSessionResumes(t *testing.T) {
+	frames := furnaceJPEGs(t)
+	root, data := t.TempDir(), t.TempDir()
+	if err := os.Mkdir(filepath.Join(root, "cam"), 0o755); err != nil {
+		t.Fatal(err)
+	}
+	write := func(from, to int) {
+		for i := from; i < to; i++ {
+			if err := os.WriteFile(filepath.Join(root, "cam", fmt.Sprintf("frame%d.jpg", i)), frames[i], 0o644); err != nil {
+				t.Fatal(err)
+			}
+		}
+	}
+	const first = 70 // 50 reference frames, then 20 watched
+	ts := mustServer(t, Options{DataDir: data, WatchRoot: root})
+	code, cr, body := ts.createJSON(t, `{"source":{"kind":"folder","path":"cam"},"params":`+liveParamsFix+`}`)
+	if code != http.StatusCreated {
+		t.Fatalf("%d %s", code, body)
+	}
+	write(0, first)
+	ts.waitStatus(t, cr, 20*time.Second, "the first files watched", func(st Status) bool {
+		return st.Live != nil && st.Live.FramesMonitored == first-50
+	})
+	ts.ts.Close()
+	ts.Server.Close()
+
+	ts2 := mustServer(t, Options{DataDir: data, WatchRoot: root})
+	// The resumed session skips every file present at its first scan
+	// (files that came while no server ran are not monitored): write the
+	// new ones once it has scanned.
+	ts2.waitStatus(t, cr, 10*time.Second, "the resumed session", func(st Status) bool { return st.Live != nil })
+	time.Sleep(500 * time.Millisecond)
+	write(first, len(frames))
+	st := ts2.waitStatus(t, cr, 30*time.Second, "the alarm and every new file", func(st Status) bool {
+		return st.Alarms > 0 && st.Live != nil && st.Live.FramesIn >= uint64(len(frames)-first)
+	})
+	if st.Live.FramesIn != uint64(len(frames)-first) {
+		t.Fatalf("after the restart %d frames came in; want the %d new files only", st.Live.FramesIn, len(frames)-first)
+	}
+	if len(st.Errors) != 0 {
+		t.Fatalf("errors: %+v", st.Errors)
+	}
+	checkPlanted(t, ts2, cr, 0)
+}
