@@ -268,10 +268,11 @@ func (f *liveFeed) status() LiveStatus {
 		st.LatencyMedian = quantile(l, 0.5)
 		st.LatencyP95 = quantile(l, 0.95)
 	}
-	if f.cfg.PerHours > 0 {
+	if f.cfg.PerHours > 0 && math.Round(f.cfg.PerHours*3600*f.cfg.FPS) == f.arl0 { // not after a PATCH of arl0
 		st.ARL0Rule = fmt.Sprintf("at most one false alarm per %g h at %g frames/s: %g h x 3600 s x %g frames/s = %.0f frames",
 			f.cfg.PerHours, f.cfg.FPS, f.cfg.PerHours, f.cfg.FPS, f.arl0)
 	} else {
+		st.PerHours, st.FPS = 0, 0
 		st.ARL0Rule = fmt.Sprintf("arl0 given in frames: %.0f", f.arl0)
 	}
 	return st
