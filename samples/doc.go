@@ -19,7 +19,7 @@
 //     radius grows from 3 to 8 pixels.
 //   - starfield: a 16-bit patrol camera on a telescope, 512 x 512, registered
 //     frames. Stars with a Gaussian point-spread function and power-law
-//     brightness (many faint, few bright, the brightest saturate) sit on a sky
+//     brightness (many faint, few bright, none saturated) sit on a sky
 //     with a faint gradient; noise is read noise plus Poisson noise. At the
 //     change frame a faint source (2.5 sky sigma at its centre pixel) brightens
 //     over a dozen frames, holds, and fades to nothing at the end frame.
