@@ -5,6 +5,7 @@ import (
 	"encoding/json"
 	"image"
 	"math"
+	"math/rand/v2"
 	"net/http"
 	"os"
 	"os/exec"
@@ -423,4 +424,41 @@ func TestMeasureFurnaceBootstrap(t *testing.T) {
 	t.Logf("  bootstrap limit %.3f: ARL0 %.0f ± %.0f (%+.0f%% from the target)", hB, rb.arl, rb.se, 100*(rb.arl/target-1))
 	t.Logf("  bootstrap + estimation error limit %.3f: ARL0 %.0f ± %.0f (%+.0f%% from the target)", hE, re.arl, re.se, 100*(re.arl/target-1))
 	t.Logf("  normal    limit %.3f: ARL0 %.0f ± %.0f (%+.0f%% from the target)", hN, rn.arl, rn.se, 100*(rn.arl/target-1))
+}
+
+// withEstimationError (measurement only: it made the limit far too
+// conservative on the furnace frames) passes standardised frames through a model learnt,
+// with the same estimator, from n frames of standard normal noise, so each
+// stream carries the lasting error of an estimated level and scale that
+// in-sample standardised reference frames lack (the Phase I estimation
+// effect: Jensen, Jones-Farmer, Champ & Woodall 2006, Journal of Quality
+// Technology 38(4)). The frames are changed in place and returned.
+func withEstimationError(boot [][]float32, n int, kind monitor.ModelKind, seed uint64) ([][]float32, error) {
+	if len(boot) == 0 {
+		return boot, nil
+	}
+	m := len(boot[0])
+	rng := rand.New(rand.NewPCG(seed, 0x5eed))
+	lr, err := monitor.NewLearner(m, n, monitor.ModelOptions{Kind: kind, ScaleFloor: 1e-6})
+	if err != nil {
+		return nil, err
+	}
+	row := make([]float32, m)
+	for j := 0; j < n; j++ {
+		for i := range row {
+			row[i] = float32(rng.NormFloat64())
+		}
+		if err := lr.Add(row); err != nil {
+			return nil, err
+		}
+	}
+	md, err := lr.Model()
+	if err != nil {
+		return nil, err
+	}
+	for _, f := range boot {
+		copy(row, f)
+		md.StandardizeFrame(f, row)
+	}
+	return boot, nil
 }
