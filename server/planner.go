@@ -374,22 +374,23 @@ func (s *Server) runPlan(ctx context.Context, sess *Session, run *planRun, spec 
 		res, err = monitor.Plan(ctx, spec)
 	}
 	run.mu.Lock()
-	r := &run.rec
-	r.Seconds = time.Since(t0).Seconds()
+	// The outcome is built on a copy and saved before the planner shows it
+	// as done, so a reader that sees "done" also finds plan.json.
+	rec := run.rec
+	run.mu.Unlock()
+	rec.Seconds = time.Since(t0).Seconds()
 	switch {
 	case err == nil:
-		r.State, r.Progress = "done", 1
-		r.Results = planRows(res)
-		r.Note = fmt.Sprintf("%s; %d delay runs and %d calibration paths per policy and budget, seed %d", note, req.Runs, req.Paths, req.Seed)
-		a := advise(r.Results, req.TargetDelay)
-		r.Advice = &a
+		rec.State, rec.Progress = "done", 1
+		rec.Results = planRows(res)
+		rec.Note = fmt.Sprintf("%s; %d delay runs and %d calibration paths per policy and budget, seed %d", note, req.Runs, req.Paths, req.Seed)
+		a := advise(rec.Results, req.TargetDelay)
+		rec.Advice = &a
 	case ctx.Err() != nil:
-		r.State, r.Message = "cancelled", "cancelled"
+		rec.State, rec.Message = "cancelled", "cancelled"
 	default:
-		r.State, r.Message = "failed", strings.TrimPrefix(trimPrefix(err.Error()), "plan: ")
+		rec.State, rec.Message = "failed", strings.TrimPrefix(trimPrefix(err.Error()), "plan: ")
 	}
-	rec := *r
-	run.mu.Unlock()
 	if rec.State == "done" {
 		if data, err := json.MarshalIndent(rec, "", "  "); err == nil {
 			if err := writeFileSync(filepath.Join(sess.dir, planFileName), append(data, '\n')); err != nil {
@@ -399,6 +400,10 @@ func (s *Server) runPlan(ctx context.Context, sess *Session, run *planRun, spec 
 	} else if rec.State == "failed" {
 		sess.log.Warn("plan failed", "err", err)
 	}
+	run.mu.Lock()
+	rec.Progress = max(rec.Progress, run.rec.Progress)
+	run.rec = rec
+	run.mu.Unlock()
 	publishPlan(sess, rec.State, rec.Progress, rec.Message)
 }
 
