@@ -355,7 +355,7 @@ func (s *Server) handleParams(c echo.Context) error {
 	sess.mu.Lock()
 	cur := sess.meta.Params
 	sess.mu.Unlock()
-	p, err := decodeParams(cur, body)
+	p, err := sess.patchParams(cur, body)
 	if err != nil {
 		return err
 	}

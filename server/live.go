@@ -96,6 +96,7 @@ type liveFeed struct {
 	counts       func() live.Counts // the running camera or folder; nil otherwise
 	prev         live.Counts        // totals of earlier runs' sources
 	in, dropped  uint64             // pushed kinds
+	taken        uint64             // pushed frames the review took from q
 	bad          uint64
 	monitored    uint64
 	reconnecting bool
@@ -127,24 +128,26 @@ func newLiveFeed(cfg liveConfig) *liveFeed {
 	return f
 }
 
-// push queues a frame; a full browser-camera queue drops its oldest one.
-// A pipe waits instead (the writer is slowed, nothing is lost) until ctx ends.
-func (f *liveFeed) push(ctx context.Context, p pushed) error {
+// push queues a frame; a full browser-camera queue drops its oldest one
+// (push returns how many it dropped). A pipe waits instead (the writer is
+// slowed, nothing is lost) until ctx ends.
+func (f *liveFeed) push(ctx context.Context, p pushed) (int, error) {
 	f.mu.Lock()
 	f.in++
 	f.mu.Unlock()
 	if !f.drop {
 		select {
 		case f.q <- p:
-			return nil
+			return 0, nil
 		case <-ctx.Done():
-			return ctx.Err()
+			return 0, ctx.Err()
 		}
 	}
+	dropped := 0
 	for {
 		select {
 		case f.q <- p:
-			return nil
+			return dropped, nil
 		default:
 		}
 		select {
@@ -152,6 +155,7 @@ func (f *liveFeed) push(ctx context.Context, p pushed) error {
 			f.mu.Lock()
 			f.dropped++
 			f.mu.Unlock()
+			dropped++
 		default:
 		}
 	}
@@ -360,9 +364,16 @@ func fromLive(ctx context.Context, ch <-chan live.Frame) func() (pushed, bool) {
 // per per_hours hours" at fps frames a second instead of "arl0" in frames.
 // Live sessions run at the frames' own pace.
 func liveParams(raw json.RawMessage) (Params, liveConfig, error) {
-	var cfg liveConfig
 	base := DefaultParams()
 	base.Pace = 0
+	return paramsOnto(base, raw)
+}
+
+// paramsOnto decodes a partial params object onto base, as decodeParams,
+// and also takes "per_hours" with "fps" in place of "arl0"; the returned
+// liveConfig carries them (zero when the target was not given that way).
+func paramsOnto(base Params, raw json.RawMessage) (Params, liveConfig, error) {
+	var cfg liveConfig
 	var set map[string]json.RawMessage
 	if len(bytes.TrimSpace(raw)) > 0 {
 		if err := json.Unmarshal(raw, &set); err != nil {
@@ -416,6 +427,36 @@ func liveParams(raw json.RawMessage) (Params, liveConfig, error) {
 		}
 	}
 	return p, cfg, nil
+}
+
+// patchParams decodes a PATCH (or calibrate) body onto the session's
+// current params. Any session may give the false-alarm target as
+// "per_hours" with "fps"; a live session also keeps that rule in live.json,
+// so its status goes on stating it.
+func (sess *Session) patchParams(cur Params, body []byte) (Params, error) {
+	p, cfg, err := paramsOnto(cur, body)
+	if err != nil || cfg.PerHours == 0 {
+		return p, err
+	}
+	sess.mu.Lock()
+	kind, dir := sess.meta.Source.Kind, sess.dir
+	sess.mu.Unlock()
+	if !isLiveKind(kind) {
+		return p, nil
+	}
+	feed, err := sess.feedOf()
+	if err != nil {
+		return p, err
+	}
+	feed.mu.Lock()
+	feed.cfg.PerHours, feed.cfg.FPS = cfg.PerHours, cfg.FPS
+	saved := feed.cfg
+	feed.mu.Unlock()
+	data, _ := json.MarshalIndent(saved, "", "  ")
+	if err := writeFileSync(filepath.Join(dir, liveFile), append(data, '\n')); err != nil {
+		return p, fmt.Errorf("server: save %s: %w", liveFile, err)
+	}
+	return p, nil
 }
 
 // cameraAllow builds the operator's allow-list.
@@ -552,6 +593,7 @@ func liveReview(ctx context.Context, s *Session) (*Report, error) {
 	rp := reviewParams(m.Params)
 	feed.mu.Lock()
 	feed.arl0 = rp.ARL0
+	cfg := feed.cfg // a PATCH may change its target fields meanwhile
 	feed.mu.Unlock()
 	rctx, cancel := context.WithCancel(ctx)
 	defer cancel()
@@ -569,13 +611,13 @@ func liveReview(ctx context.Context, s *Session) (*Report, error) {
 			s.frameError("", -1, e.Err)
 		}
 	}
-	switch feed.cfg.Kind {
+	switch cfg.Kind {
 	case kindCameraURL:
 		allow, err := s.srv.cameraAllow()
 		if err != nil {
 			return nil, err
 		}
-		cam, err := live.NewCamera(live.CameraConfig{URL: feed.cfg.URL, Allow: allow, Events: events, Logger: s.log,
+		cam, err := live.NewCamera(live.CameraConfig{URL: cfg.URL, Allow: allow, Events: events, Logger: s.log,
 			MinBackoff: 100 * time.Millisecond, MaxBackoff: 5 * time.Second})
 		if err != nil {
 			return nil, errorf(KindForbidden, "%s", trimPrefix(err.Error()))
@@ -587,7 +629,7 @@ func liveReview(ctx context.Context, s *Session) (*Report, error) {
 		ls.next = fromLive(rctx, cam.Frames())
 		ls.end = func() error { wait.Wait(); return runErr }
 	case kindFolder:
-		f, err := s.srv.openFolder(feed.cfg, resumed, events)
+		f, err := s.srv.openFolder(cfg, resumed, events)
 		if err != nil {
 			return nil, err
 		}
@@ -606,12 +648,20 @@ func liveReview(ctx context.Context, s *Session) (*Report, error) {
 			case <-rctx.Done():
 				return pushed{}, false
 			case p, ok := <-feed.q:
+				if ok {
+					feed.mu.Lock()
+					feed.taken++
+					feed.mu.Unlock()
+					if cfg.Kind == kindBrowserCamera {
+						s.ackCamera(feed)
+					}
+				}
 				return p, ok
 			}
 		}
 		ls.end = feed.pipeEnd
 	default:
-		return nil, errorf(KindInvalid, "live source kind %q unknown", feed.cfg.Kind)
+		return nil, errorf(KindInvalid, "live source kind %q unknown", cfg.Kind)
 	}
 	cached, haveCached := loadCalibration(s.dir, rp)
 	if haveCached && rp.Limit <= 0 {
@@ -656,7 +706,39 @@ func (sess *Session) ingest(ctx context.Context, data []byte) {
 	feed.mu.Lock()
 	name := fmt.Sprintf("camera#%d", feed.in)
 	feed.mu.Unlock()
-	feed.push(ctx, pushed{name: name, data: slices.Clone(data), arrived: time.Now()})
+	n, _ := feed.push(ctx, pushed{name: name, data: slices.Clone(data), arrived: time.Now()})
+	for range n {
+		sess.ackCamera(feed)
+	}
+}
+
+// cameraAck is the text message an owner's page gets each time one of the
+// camera frames it sent leaves the server's queue, taken by the review or
+// dropped; a page keeps only a couple of frames unanswered (in flight).
+type cameraAck struct {
+	Type    string `json:"type"` // "camera"
+	In      uint64 `json:"in"`   // frames received so far (this session)
+	Taken   uint64 `json:"taken"`
+	Dropped uint64 `json:"dropped"`
+}
+
+// ackCamera sends a cameraAck to the session's owner connections only.
+func (sess *Session) ackCamera(feed *liveFeed) {
+	feed.mu.Lock()
+	a := cameraAck{Type: "camera", In: feed.in, Taken: feed.taken, Dropped: feed.dropped}
+	feed.mu.Unlock()
+	msg, err := json.Marshal(a)
+	if err != nil {
+		return
+	}
+	h := sess.hub
+	h.mu.RLock()
+	for v := range h.viewers {
+		if v.role == roleOwner {
+			v.putEvent(msg)
+		}
+	}
+	h.mu.RUnlock()
 }
 
 // pipeEnd is why a pipe ended: nil at a clean end of input.
@@ -712,7 +794,7 @@ func (s *Server) pumpStream(src frames.Source, feed *liveFeed) {
 		} else if it.Err == nil {
 			p.err = errors.New("frame has no pixels")
 		}
-		if feed.push(s.ctx, p) != nil {
+		if _, err := feed.push(s.ctx, p); err != nil {
 			return
 		}
 	}

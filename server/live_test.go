@@ -594,3 +594,124 @@ func TestFolderSessionResumes(t *testing.T) {
 	}
 	checkPlanted(t, ts2, cr, 0)
 }
+
+// TestLivePatchPerHours: PATCH /api/sessions/{id}/params takes the
+// false-alarm target as per_hours with fps: arl0 becomes
+// per_hours x 3600 x fps (the rule in DEVELOPERS.md), the live status states
+// the rule, live.json keeps it, and incomplete or mixed targets get a 400.
+func TestLivePatchPerHours(t *testing.T) {
+	ts := mustServer(t, Options{})
+	code, cr, body := ts.createJSON(t, `{"source":{"kind":"browser-camera"},"params":{"arl0":500,"limit":160}}`)
+	if code != http.StatusCreated {
+		t.Fatalf("%d %s", code, body)
+	}
+	patch := func(b string) (int, []byte) {
+		return ts.do(t, "PATCH", "/api/sessions/"+cr.ID+"/params", cr.OwnerToken, "application/json", strings.NewReader(b))
+	}
+	for _, bad := range []string{`{"per_hours":2}`, `{"fps":5}`, `{"per_hours":2,"fps":5,"arl0":900}`, `{"per_hours":0,"fps":5}`, `{"per_hours":1,"fps":1e9}`} {
+		if code, b := patch(bad); code != http.StatusBadRequest {
+			t.Errorf("PATCH %s: %d %s; want 400", bad, code, b)
+		}
+	}
+	if st := ts.status(t, cr); st.Params.ARL0 != 500 {
+		t.Fatalf("refused PATCHes changed arl0 to %v", st.Params.ARL0)
+	}
+	code, b := patch(`{"per_hours":0.5,"fps":4}`)
+	if code != http.StatusOK {
+		t.Fatalf("PATCH per_hours 0.5 fps 4: %d %s", code, b)
+	}
+	want := 0.5 * 3600 * 4.0
+	st := ts.waitStatus(t, cr, 5*time.Second, "the new run's live status", func(st Status) bool {
+		return st.Live != nil && st.Live.ARL0 == want
+	})
+	if st.Params.ARL0 != want || st.Live.PerHours != 0.5 || st.Live.FPS != 4 || !strings.Contains(st.Live.ARL0Rule, "per 0.5 h at 4 frames/s") {
+		t.Fatalf("after PATCH: params arl0 %v, live %+v; want arl0 %v stated as per 0.5 h at 4 frames/s", st.Params.ARL0, *st.Live, want)
+	}
+	data, err := os.ReadFile(filepath.Join(ts.opt.DataDir, "sessions", cr.ID, liveFile))
+	if err != nil {
+		t.Fatal(err)
+	}
+	var saved liveConfig
+	if err := json.Unmarshal(data, &saved); err != nil || saved.PerHours != 0.5 || saved.FPS != 4 || saved.Kind != kindBrowserCamera {
+		t.Fatalf("live.json after PATCH: %s (%v)", data, err)
+	}
+	// A later target in frames replaces the rule in the status.
+	if code, b := patch(`{"arl0":800}`); code != http.StatusOK {
+		t.Fatalf("PATCH arl0: %d %s", code, b)
+	}
+	st = ts.waitStatus(t, cr, 5*time.Second, "arl0 800", func(st Status) bool { return st.Live != nil && st.Live.ARL0 == 800 })
+	if !strings.Contains(st.Live.ARL0Rule, "given in frames") {
+		t.Fatalf("after PATCH arl0 800 the rule reads %q", st.Live.ARL0Rule)
+	}
+	// An offline session takes the same form and turns it into frames.
+	up := ts.mustUpload(t, synthFrames(t, 16, 12, 30, nil), `{"reference_frames":10,"limit":50}`)
+	code, b = ts.do(t, "PATCH", "/api/sessions/"+up.ID+"/params", up.OwnerToken, "application/json", strings.NewReader(`{"per_hours":2,"fps":0.25}`))
+	if code != http.StatusOK {
+		t.Fatalf("offline PATCH per_hours: %d %s", code, b)
+	}
+	if st := ts.status(t, up); st.Params.ARL0 != 2*3600*0.25 {
+		t.Fatalf("offline session arl0 %v after per_hours 2 at 0.25 frames/s", st.Params.ARL0)
+	}
+}
+
+// TestBrowserCameraAcks: each camera frame the owner sends is answered on
+// the owner's socket with a "camera" message once the review takes it (or
+// drops it); share viewers get none.
+func TestBrowserCameraAcks(t *testing.T) {
+	frames := furnaceJPEGs(t)[:12]
+	ts := mustServer(t, Options{})
+	code, cr, body := ts.createJSON(t, `{"source":{"kind":"browser-camera"},"params":`+liveParamsFix+`}`)
+	if code != http.StatusCreated {
+		t.Fatalf("%d %s", code, body)
+	}
+	type ack struct {
+		Type               string
+		In, Taken, Dropped uint64
+	}
+	listen := func(tok string) (*websocket.Conn, chan ack) {
+		c, _, err := dialWS(t, ts, cr.ID, tok, nil)
+		if err != nil {
+			t.Fatal(err)
+		}
+		t.Cleanup(func() { c.Close() })
+		ch := make(chan ack, 64)
+		go func() {
+			for {
+				kind, msg, err := c.ReadMessage()
+				if err != nil {
+					close(ch)
+					return
+				}
+				var a ack
+				if kind == websocket.TextMessage && json.Unmarshal(msg, &a) == nil && a.Type == "camera" {
+					ch <- a
+				}
+			}
+		}()
+		return c, ch
+	}
+	owner, acks := listen(cr.OwnerToken)
+	_, viewerAcks := listen(cr.ShareToken)
+	var last ack
+	for i, f := range frames {
+		if err := owner.WriteMessage(websocket.BinaryMessage, f); err != nil {
+			t.Fatal(err)
+		}
+		select { // one frame in flight: every ack is for the frame just sent
+		case last = <-acks:
+		case <-time.After(10 * time.Second):
+			t.Fatalf("no ack for frame %d", i)
+		}
+		if last.In != uint64(i+1) || last.Taken+last.Dropped != uint64(i+1) {
+			t.Fatalf("ack after frame %d: %+v", i, last)
+		}
+	}
+	if last.Dropped != 0 {
+		t.Errorf("one frame in flight at a time, yet %d dropped", last.Dropped)
+	}
+	select {
+	case a := <-viewerAcks:
+		t.Fatalf("a share viewer got a camera ack: %+v", a)
+	case <-time.After(100 * time.Millisecond):
+	}
+}
