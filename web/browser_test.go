@@ -30,8 +30,9 @@ import (
 const chromiumPath = "/usr/bin/chromium"
 
 // newBrowser starts a fresh headless chromium (BROWSER.md recipe) and
-// returns its first tab. The browser log is printed only if the test fails.
-func newBrowser(t testing.TB, timeout time.Duration) context.Context {
+// returns its first tab; extra options (camera flags) are added to the
+// recipe's. The browser log is printed only if the test fails.
+func newBrowser(t testing.TB, timeout time.Duration, extra ...chromedp.ExecAllocatorOption) context.Context {
 	t.Helper()
 	if _, err := os.Stat(chromiumPath); err != nil {
 		t.Skipf("browser tests need Debian's chromium at %s (apt-get install chromium): %v", chromiumPath, err)
@@ -48,6 +49,7 @@ func newBrowser(t testing.TB, timeout time.Duration) context.Context {
 		chromedp.UserDataDir(t.TempDir()), chromedp.Env("TMPDIR=" + t.TempDir()),
 		chromedp.CombinedOutput(&logBuf),
 	}
+	opts = append(opts, extra...)
 	base, stop := context.WithTimeout(context.Background(), timeout)
 	alloc, stopAlloc := chromedp.NewExecAllocator(base, opts...)
 	tab, stopTab := chromedp.NewContext(alloc)
@@ -66,6 +68,20 @@ func newBrowser(t testing.TB, timeout time.Duration) context.Context {
 		}
 	})
 	return tab
+}
+
+// newTestServer starts a server with a fresh data folder on 127.0.0.1 (a
+// secure context, so getUserMedia works over plain http) for one test.
+func newTestServer(t *testing.T) *httptest.Server {
+	t.Helper()
+	srv, err := server.New(server.Options{DataDir: t.TempDir(), Logger: slog.New(slog.NewTextHandler(io.Discard, nil))})
+	if err != nil {
+		t.Fatal(err)
+	}
+	ts := httptest.NewServer(srv.Handler())
+	t.Cleanup(func() { ts.Close(); srv.Close() })
+	srv.SetBaseURL(ts.URL)
+	return ts
 }
 
 // withoutDbus drops chromium's harmless "Failed to connect to the bus" lines.
@@ -208,13 +224,7 @@ func fixedLimit() string {
 // second tab that follows the same frames and cannot change anything.
 func TestWatchUploadShare(t *testing.T) {
 	paths := writeFrames(t)
-	srv, err := server.New(server.Options{DataDir: t.TempDir(), Logger: slog.New(slog.NewTextHandler(io.Discard, nil))})
-	if err != nil {
-		t.Fatal(err)
-	}
-	ts := httptest.NewServer(srv.Handler())
-	t.Cleanup(func() { ts.Close(); srv.Close() })
-	srv.SetBaseURL(ts.URL)
+	ts := newTestServer(t)
 
 	tab := newBrowser(t, 90*time.Second)
 	if err := chromedp.Do(tab, chromedp.Navigate(ts.URL+"/")); err != nil {

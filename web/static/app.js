@@ -109,6 +109,7 @@
 
   function setState(st) {
     if (body.dataset.state !== st && $("view")) dirty();
+    if (cam.on && (st === "failed" || st === "finished")) stopCamera("The session ended; the camera is off.");
     body.dataset.state = st;
     const b = $("state-badge");
     b.hidden = false;
@@ -163,6 +164,7 @@
     body.dataset.state = "home";
     wireUpload();
     wireDemo();
+    wireCameraForm();
     listSessions();
   }
 
@@ -328,7 +330,7 @@
     for (const s of items) {
       const tr = document.createElement("tr");
       const own = mine[s.id];
-      const cells = [s.name || s.id, STATE_WORDS[s.state] || s.state || "", s.frames_total ? (s.frames_seen || 0) + " / " + s.frames_total : String(s.frames_seen ?? s.frames ?? "")];
+      const cells = [s.name || s.id, STATE_WORDS[s.state] || s.state || "", s.frames_total > 0 ? (s.frames_seen || 0) + " / " + s.frames_total : String(s.frames_seen ?? s.frames ?? "")];
       for (const c of cells) { const td = document.createElement("td"); td.textContent = c; tr.appendChild(td); }
       const td = document.createElement("td");
       if (own && own.owner_token) {
@@ -403,6 +405,7 @@
     };
     ws.onclose = () => {
       if (S.ws !== ws || S.closing) return;
+      cam.inflight = 0;
       const done = ["finished", "failed", "stopped"].includes(body.dataset.state);
       if (!done) setState("offline");
       S.wsTries++;
@@ -423,6 +426,7 @@
       case "status": onStatus(m.session || {}); break;
       case "calibration": onCalibration(m); break;
       case "plan": onPlanMessage(m); break;
+      case "camera": onCameraAck(m); break;
       case "error": showError(m.message || m.error || "server error"); break;
       default: break;
     }
@@ -443,7 +447,9 @@
       S.st.push(h.state ? h.state[i] : -1);
     }
     for (const a of h.alarms || []) addAlarm(a);
+    cam.inflight = 0; // a fresh hello: answers to earlier frames may be lost
     onStatus(m.session || {});
+    if (m.session && (m.session.live || LIVE_WORDS[m.session.source])) setupLive(m.session);
     fillSettings(S.params);
     if (S.fr.length) body.dataset.frame = String(S.fr[S.fr.length - 1]);
     body.dataset.hello = String((+body.dataset.hello || 0) + 1);
@@ -498,6 +504,8 @@
     if (s.state === "learning" && rf > 0 && typeof s.frames_seen === "number") {
       const n = Math.min(s.frames_seen, rf);
       setProgress($("cal-progress"), n / rf, "learning the reference: " + n + " of " + rf + " frames");
+    } else if (["watching", "alarm"].includes(s.state) && $("cal-progress").querySelector(".label").textContent.startsWith("learning")) {
+      $("cal-progress").hidden = true; // learnt; a limit being set shows here instead
     }
     updateFacts();
     dirty();
@@ -641,7 +649,7 @@
 
   function updateFacts() {
     const f = S.cur ? S.cur.frame : (S.fr.length ? S.fr[S.fr.length - 1] : -1);
-    const total = S.status.frames_total;
+    const total = S.status.frames_total > 0 ? S.status.frames_total : 0; // -1: a live feed, no end known
     const seen = S.status.frames_seen || 0;
     const ft = f >= 0 ? "frame " + intText(f) + (total ? " of " + intText(total) : "") :
       seen > 0 ? intText(seen) + " reference frames read" : "–";
@@ -1216,6 +1224,15 @@
     }
     return Math.round(parseFloat(field("arl0").value));
   }
+  // targetParams is the target as the server takes it: {arl0} in frames, or
+  // {per_hours, fps}, which the server turns into frames and states.
+  function targetParams() {
+    const mode = document.querySelector("#settings [name='arl0-mode']:checked").value;
+    const a = targetFrames();
+    if (!(Number.isFinite(a) && a > 0)) return {};
+    if (mode === "hours") return { per_hours: parseFloat(field("hours").value), fps: parseFloat(field("fps").value) };
+    return { arl0: a };
+  }
   function showTarget() {
     const n = targetFrames();
     const el = $("arl0-frames");
@@ -1238,8 +1255,7 @@
       const v = parseFloat(field(k).value);
       if (Number.isFinite(v)) p[k] = v;
     }
-    const a = targetFrames();
-    if (Number.isFinite(a) && a > 0) p.arl0 = a;
+    Object.assign(p, targetParams());
     // A fixed limit skips calibration; 0 asks for calibration again.
     const how = field("calibration").value;
     if (how === "fixed") {
@@ -1282,7 +1298,8 @@
         // The server sets the limit when a run starts: changing only the
         // target starts a new run, which calibrates first.
         if (!(a > 0)) throw new Error("give a positive false-alarm target");
-        const st = await api("POST", "/api/sessions/" + encodeURIComponent(S.id) + "/calibrate", { arl0: a, limit: 0, calibration: field("calibration").value === "fixed" ? "estimated" : field("calibration").value }, S.token);
+        const st = await api("POST", "/api/sessions/" + encodeURIComponent(S.id) + "/calibrate", Object.assign(targetParams(),
+          { limit: 0, calibration: field("calibration").value === "fixed" ? "estimated" : field("calibration").value }), S.token);
         resetHistory();
         if (st && typeof st === "object") onStatus(st);
         $("settings-msg").textContent = "New target sent; the limit is being set, then the review starts again.";
@@ -1377,6 +1394,268 @@
     ctx.stroke();
   }
 
+
+  // ---------- live feeds: camera from this browser, live panel ----------
+
+  // Live source kinds (status "source") -> words.
+  const LIVE_WORDS = {
+    "browser-camera": "camera of a browser", "camera-url": "camera on the network",
+    folder: "folder on the server", stdin: "pipe into the server",
+  };
+  const MAX_IN_FLIGHT = 2;   // camera frames sent and not yet answered by the server
+  const JPEG_QUALITY = 0.85;
+  const cam = {
+    on: false, stream: null, timer: 0, canvas: null, ctx: null, w: 320, h: 240, rate: 10,
+    inflight: 0, sent: 0, answered: 0, held: 0, encoding: false, lastProgress: 0,
+  };
+
+  function sizeOf(v) { const [w, h] = String(v).split("x").map(Number); return [w || 320, h || 240]; }
+
+  // The start page's camera card: creates a browser-camera session and opens
+  // it; the watch page then starts the camera.
+  function wireCameraForm() {
+    const f = $("camera-form");
+    const q = (n) => f.querySelector("[name=" + n + "]");
+    let fpsTouched = false;
+    q("fps").addEventListener("input", () => { fpsTouched = true; });
+    const show = () => {
+      if (!fpsTouched) q("fps").value = q("rate").value;
+      const h = parseFloat(q("per_hours").value), fps = parseFloat(q("fps").value);
+      $("camera-arl0").textContent = h > 0 && fps > 0 ?
+        "= one false alarm per " + intText(h * 3600 * fps) + " frames on average" : "Give positive numbers.";
+    };
+    f.addEventListener("input", show);
+    show();
+    f.addEventListener("submit", async (e) => {
+      e.preventDefault();
+      const [w, h] = sizeOf(q("size").value);
+      const rate = parseFloat(q("rate").value);
+      const p = { per_hours: parseFloat(q("per_hours").value), fps: parseFloat(q("fps").value) };
+      const budget = q("budget").value.trim();
+      if (budget) p.budget = budget;
+      for (const k of ["reference_frames", "tile"]) { const v = parseInt(q(k).value, 10); if (v > 0) p[k] = v; }
+      const limit = parseFloat(q("limit").value);
+      if (limit > 0) p.limit = limit;
+      $("camera-start").disabled = true;
+      try {
+        const data = await api("POST", "/api/sessions", { source: { kind: "browser-camera" }, name: "camera " + w + " × " + h, params: p });
+        remember(data.id, { camera: { w, h, rate }, camera_autostart: true });
+        goToSession(data, "camera " + w + " × " + h);
+      } catch (err) {
+        $("camera-start").disabled = false;
+        showError("Could not start a camera session: " + err.message);
+      }
+    });
+  }
+
+  // setupLive shows the live panel once for a live session and polls its
+  // status (rates, drops, delay) every second.
+  function setupLive(st) {
+    if (S.live) return;
+    S.live = st.source || (st.live && st.live.kind) || "live";
+    body.dataset.live = S.live;
+    $("live-card").hidden = false;
+    $("live-kind").textContent = LIVE_WORDS[S.live] ? "(" + LIVE_WORDS[S.live] + ")" : "";
+    if (S.live === "browser-camera" && S.role === "owner") {
+      $("camera-box").hidden = false;
+      const saved = loadStore()[S.id] || {};
+      const c = saved.camera || {};
+      if (c.w) $("camera-size").value = c.w + "x" + c.h;
+      if (c.rate) $("camera-rate").value = c.rate;
+      $("camera-toggle").addEventListener("click", () => { if (cam.on) stopCamera("The camera is off."); else startCamera(); });
+      for (const id of ["camera-size", "camera-rate"]) $(id).addEventListener("change", () => { if (cam.on) { stopCamera(""); startCamera(); } });
+      body.dataset.camera = "off";
+      if (saved.camera_autostart) { remember(S.id, { camera_autostart: false }); startCamera(); }
+    }
+    pollLive();
+    setInterval(pollLive, 1000);
+  }
+
+  let livePolling = false;
+  async function pollLive() {
+    if (livePolling) return;
+    livePolling = true;
+    try {
+      showLive(await api("GET", "/api/sessions/" + encodeURIComponent(S.id), undefined, S.token));
+    } catch { /* the websocket says when the server is gone */ } finally { livePolling = false; }
+  }
+
+  function showLive(st) {
+    const l = st.live;
+    if (!l) return;
+    const bad = l.bad ? ", " + intText(l.bad) + " unreadable, skipped" : "";
+    $("l-in").textContent = fmt(l.fps_in, 1) + " frames/s (" + intText(l.frames_in) + " in all" + bad + ")";
+    $("l-mon").textContent = fmt(l.fps_monitored, 1) + " frames/s (" + intText(l.frames_monitored) + " in all)";
+    $("l-drop").textContent = intText(l.dropped) + (cam.sent ? "; held back here while the server was busy: " + intText(cam.held) : "");
+    const ms = (v) => fmt(v, v < 10 ? 1 : 0) + " ms";
+    $("l-lat").textContent = l.latency_ms_median > 0 ? "median " + ms(l.latency_ms_median) + ", 95% within " + ms(l.latency_ms_p95) : "–";
+    $("l-rule").textContent = l.arl0_rule || "–";
+    $("live-reconnecting").hidden = !l.reconnecting;
+    $("live-badge").hidden = !l.reconnecting;
+    body.dataset.reconnecting = l.reconnecting ? "1" : "0";
+    body.dataset.liveIn = String(l.frames_in);
+    body.dataset.liveMonitored = String(l.frames_monitored);
+    body.dataset.liveDropped = String(l.dropped);
+    // Reference learning, then watching.
+    const rf = (st.params && st.params.reference_frames) || 0;
+    const ref = $("live-ref");
+    if (st.state === "learning" && rf > 0) {
+      const n = Math.min(st.frames_seen || 0, rf);
+      setProgress(ref, n / rf, "learning what normal looks like: " + n + " of " + rf + " frames");
+    } else if (st.state === "calibrating") {
+      setProgress(ref, 1, "reference learnt; setting the control limit…");
+    } else if (l.frames_monitored > 0 || ["watching", "alarm"].includes(st.state)) {
+      setProgress(ref, 1, "reference learnt from " + rf + " frames; watching");
+    } else if (st.state === "queued") {
+      setProgress(ref, 0, "waiting for the first frames…");
+    }
+    // A target given per hours shows as such in the settings, once.
+    if (l.per_hours > 0 && !S.liveTargetShown) {
+      S.liveTargetShown = true;
+      document.querySelector("#settings [name='arl0-mode'][value=hours]").checked = true;
+      field("hours").value = l.per_hours;
+      field("fps").value = l.fps;
+      showTarget();
+    }
+    if (cam.on) cameraNote();
+  }
+
+  // Camera errors in plain words; the code also goes to data-camera-error.
+  function failCamera(e) {
+    const name = (e && e.name) || "";
+    const words = {
+      NotAllowedError: ["denied", "The camera was not allowed (permission denied by you or by the browser's settings). Allow the camera for this page and press Start again."],
+      SecurityError: ["denied", "The browser does not let this page use a camera (permission denied)."],
+      NotFoundError: ["no-device", "No camera was found. Connect one and press Start again."],
+      NotReadableError: ["in-use", "The camera could not be started: another program or tab may be using it."],
+      AbortError: ["in-use", "The camera could not be started: another program or tab may be using it."],
+      OverconstrainedError: ["size", "The camera cannot give pictures of this size or rate; choose another."],
+    }[name] || ["other", "The camera could not be started" + (name ? " (" + name + ")" : "") + ": " + ((e && e.message) || String(e))];
+    cameraError(words[0], words[1]);
+  }
+  function cameraError(code, text) {
+    const el = $("camera-error");
+    el.hidden = !code;
+    el.textContent = code ? text : "";
+    if (code) {
+      body.dataset.cameraError = code + ": " + text;
+      body.dataset.camera = "error";
+      $("camera-note").textContent = "The camera is off.";
+    } else delete body.dataset.cameraError;
+  }
+
+  async function startCamera() {
+    cameraError(null);
+    const [w, h] = sizeOf($("camera-size").value);
+    const rate = Math.max(0.2, Math.min(30, parseFloat($("camera-rate").value) || 10));
+    remember(S.id, { camera: { w, h, rate } });
+    if (!navigator.mediaDevices || !navigator.mediaDevices.getUserMedia) {
+      cameraError("unavailable", "This browser gives this page no camera: a camera needs an https address, or a page served from this computer.");
+      return;
+    }
+    body.dataset.camera = "starting";
+    $("camera-note").textContent = "Asking for the camera…";
+    $("camera-toggle").disabled = true;
+    let stream;
+    try {
+      stream = await navigator.mediaDevices.getUserMedia({ audio: false,
+        video: { width: { ideal: w }, height: { ideal: h }, frameRate: { ideal: rate } } });
+      const v = $("camera-video");
+      v.srcObject = stream;
+      await v.play();
+      for (let i = 0; !v.videoWidth && i < 100; i++) await new Promise((ok) => setTimeout(ok, 50));
+      if (!v.videoWidth) throw Object.assign(new Error("the camera gave no picture within 5 seconds"), { name: "NoPicture" });
+    } catch (e) {
+      if (stream) for (const t of stream.getTracks()) t.stop();
+      $("camera-toggle").disabled = false;
+      failCamera(e);
+      return;
+    }
+    Object.assign(cam, { on: true, stream, w, h, rate, inflight: 0, encoding: false, lastProgress: performance.now() });
+    cam.canvas = document.createElement("canvas");
+    cam.canvas.width = w; cam.canvas.height = h;
+    cam.ctx = cam.canvas.getContext("2d");
+    const track = stream.getVideoTracks()[0];
+    const label = (track && track.label) || "camera";
+    cam.label = label.length > 40 ? "…" + label.slice(-39) : label;
+    if (track) track.addEventListener("ended", () => {
+      if (cam.stream !== stream) return;
+      stopCamera("");
+      cameraError("ended", "The camera stopped sending pictures (unplugged, or turned off by the browser).");
+    });
+    cam.timer = setInterval(cameraTick, 1000 / rate);
+    $("camera-toggle").disabled = false;
+    $("camera-toggle").textContent = "Stop the camera";
+    body.dataset.camera = "on";
+    cameraNote();
+  }
+
+  function stopCamera(note) {
+    clearInterval(cam.timer);
+    if (cam.stream) for (const t of cam.stream.getTracks()) t.stop();
+    cam.stream = null; cam.on = false; cam.encoding = false;
+    $("camera-video").srcObject = null;
+    $("camera-toggle").textContent = "Start the camera";
+    if (note !== "") $("camera-note").textContent = note;
+    if (body.dataset.camera === "on") body.dataset.camera = "off";
+  }
+
+  function cameraNote() {
+    $("camera-note").textContent = "On (" + cam.label + "): " + cam.w + " × " + cam.h + ", up to " + fmt(cam.rate, 1) +
+      " per second. Sent " + intText(cam.sent) + ", answered " + intText(cam.answered) + ".";
+  }
+
+  // cameraTick draws the camera's picture (cropped to fill) and sends it as a
+  // JPEG, unless MAX_IN_FLIGHT frames are still unanswered: then the frame is
+  // held back (not sent), so the server is never sent more than it takes.
+  function cameraTick() {
+    const ws = S.ws, v = $("camera-video");
+    if (!cam.on || !ws || ws.readyState !== WebSocket.OPEN || !v.videoWidth) return;
+    if (cam.inflight >= MAX_IN_FLIGHT && performance.now() - cam.lastProgress > 10000) cam.inflight = 0; // answers lost: start over
+    if (cam.encoding || cam.inflight >= MAX_IN_FLIGHT || ws.bufferedAmount > (1 << 20)) {
+      cam.held++;
+      body.dataset.camHeld = String(cam.held);
+      return;
+    }
+    const vw = v.videoWidth, vh = v.videoHeight, k = Math.max(cam.w / vw, cam.h / vh);
+    const sw = cam.w / k, sh = cam.h / k;
+    cam.ctx.drawImage(v, (vw - sw) / 2, (vh - sh) / 2, sw, sh, 0, 0, cam.w, cam.h);
+    localPreview();
+    cam.encoding = true;
+    cam.canvas.toBlob((blob) => {
+      cam.encoding = false;
+      if (!blob || !cam.on || S.ws !== ws || ws.readyState !== WebSocket.OPEN) return;
+      ws.send(blob);
+      if (cam.inflight === 0) cam.lastProgress = performance.now();
+      cam.inflight++; cam.sent++;
+      body.dataset.camSent = String(cam.sent);
+    }, "image/jpeg", JPEG_QUALITY);
+  }
+
+  // localPreview shows the picture just sent under the read pixels, at most
+  // five times a second: the server sends no pictures of live frames, and
+  // this page has them at hand.
+  function localPreview() {
+    const now = performance.now();
+    if (now - (cam.previewAt || 0) < 200) return;
+    cam.previewAt = now;
+    createImageBitmap(cam.canvas).then((bmp) => {
+      if (S.preview) S.preview.close();
+      S.preview = bmp;
+      S.previewFrame = S.cur ? S.cur.frame : 0;
+      body.dataset.preview = "camera";
+      dirty();
+    }, () => {});
+  }
+
+  // The server answers each camera frame once it has taken (or dropped) it.
+  function onCameraAck(m) {
+    cam.inflight = Math.max(0, cam.inflight - 1);
+    cam.answered++;
+    cam.lastProgress = performance.now();
+    body.dataset.camAnswered = String(cam.answered);
+    if (typeof m.dropped === "number") body.dataset.camDropped = String(m.dropped);
+  }
 
   // ---------- budget planner (owner) ----------
 
