@@ -13,7 +13,7 @@ type Policy string
 const (
 	Adaptive Policy = "adaptive" // read the q largest local statistics, compensate the rest
 	Thompson Policy = "thompson" // read the q largest Gamma(eps+L, 1) draws
-	Spatial  Policy = "spatial"  // rank by max(L, a * max of the 8 neighbours' L)
+	Spatial  Policy = "spatial"  // pooled window CUSUMs beside the per-stream ones; follow-up reads in hot windows
 	Random   Policy = "random"   // q streams uniformly at random
 	Stride   Policy = "stride"   // every stream on every k-th frame, k = ceil(m/q)
 	Full     Policy = "full"     // every stream, every frame
@@ -57,8 +57,18 @@ type Config struct {
 	Hysteresis float64
 	Restart    bool // reset every statistic after an alarm instead of hysteresis
 
-	SpatialWeight float64 // a in (0,1) for the spatial policy (default 0.5)
-	ThompsonEps   float64 // eps in Gamma(eps+L,1) for thompson (default 1)
+	// Spatial policy (see windowSet and planSpatial): SpatialWindow x
+	// SpatialWindow windows every SpatialStride streams (defaults 7 and 2);
+	// a window is hot when its statistic reaches SpatialHot (default 3);
+	// hot windows get up to SpatialFollow reads each (default 12) within
+	// SpatialShare x q reads a frame (default 0.35); G is
+	// max(top-r sum, SpatialScale x largest window statistic)
+	// (SpatialScale default: see Defaults).
+	SpatialWindow, SpatialStride int
+	SpatialHot, SpatialShare     float64
+	SpatialFollow                int
+	SpatialScale                 float64
+	ThompsonEps                  float64 // eps in Gamma(eps+L,1) for thompson (default 1)
 
 	FirstFrame int     // frame index reported for the first Step (e.g. after reference frames)
 	Seed       uint64  // random source for random/thompson/stride phase
@@ -92,8 +102,23 @@ func (c Config) Defaults() Config {
 	if c.Hysteresis == 0 {
 		c.Hysteresis = 0.5
 	}
-	if c.SpatialWeight == 0 {
-		c.SpatialWeight = 0.5
+	if c.SpatialWindow == 0 {
+		c.SpatialWindow = 7
+	}
+	if c.SpatialStride == 0 {
+		c.SpatialStride = 2
+	}
+	if c.SpatialHot == 0 {
+		c.SpatialHot = 3
+	}
+	if c.SpatialShare == 0 {
+		c.SpatialShare = 0.35
+	}
+	if c.SpatialFollow == 0 {
+		c.SpatialFollow = 12
+	}
+	if c.SpatialScale == 0 {
+		c.SpatialScale = 0.6 * float64(max(c.TopR, 1))
 	}
 	if c.ThompsonEps == 0 {
 		c.ThompsonEps = 1
@@ -136,8 +161,16 @@ func (c Config) Validate() error {
 		return fmt.Errorf("monitor: limit %v must be a finite number >= 0", c.Limit)
 	case c.Hysteresis < 0 || c.Hysteresis > 1:
 		return fmt.Errorf("monitor: hysteresis %v must be in [0,1]", c.Hysteresis)
-	case c.SpatialWeight <= 0 || c.SpatialWeight >= 1:
-		return fmt.Errorf("monitor: spatial weight %v must be in (0,1)", c.SpatialWeight)
+	case c.SpatialWindow < 1 || c.SpatialStride < 1 || c.SpatialFollow < 1:
+		return fmt.Errorf("monitor: spatial window %d, stride %d and follow-up reads %d must be >= 1", c.SpatialWindow, c.SpatialStride, c.SpatialFollow)
+	case c.SpatialStride > c.SpatialWindow:
+		return fmt.Errorf("monitor: spatial stride %d exceeds the window %d (streams between windows would be in none)", c.SpatialStride, c.SpatialWindow)
+	case !(c.SpatialHot > 0) || math.IsInf(c.SpatialHot, 0):
+		return fmt.Errorf("monitor: spatial hot level %v must be a finite number > 0", c.SpatialHot)
+	case !(c.SpatialShare >= 0 && c.SpatialShare <= 1):
+		return fmt.Errorf("monitor: spatial share %v must be in [0,1]", c.SpatialShare)
+	case !(c.SpatialScale > 0) || math.IsInf(c.SpatialScale, 0):
+		return fmt.Errorf("monitor: spatial scale %v must be a finite number > 0", c.SpatialScale)
 	case c.ThompsonEps <= 0:
 		return fmt.Errorf("monitor: thompson eps %v must be > 0", c.ThompsonEps)
 	}

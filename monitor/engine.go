@@ -38,8 +38,8 @@ type Engine struct {
 	scrKey     []float64
 	rng        *rand.Rand
 
-	// spatial policy
-	mark []uint8
+	// spatial policy: pooled window statistics
+	win *windowSet
 
 	// episodes and regions
 	state       State
@@ -84,7 +84,7 @@ func New(cfg Config) (*Engine, error) {
 	}
 	e.sweepLen = (m + e.q - 1) / e.q
 	if cfg.Policy == Spatial {
-		e.mark = make([]uint8, m)
+		e.win = newWindowSet(cfg.Width, cfg.Height, cfg.SpatialWindow, cfg.SpatialStride, cfg.SpatialHot)
 	}
 	e.regWork.init(m)
 	e.regions = make([]Region, 0, maxRegions)
@@ -128,6 +128,9 @@ func (e *Engine) resetStats() {
 		e.zeroD[i] = e.t - 1
 	}
 	e.rank.reset(-e.c * float64(e.t-1))
+	if e.win != nil {
+		e.win.reset(e.t - 1)
+	}
 	e.planNext()
 }
 
@@ -198,9 +201,18 @@ func (e *Engine) Step(z []float32, missing []bool) (Update, error) {
 			l = dn
 		}
 		e.rank.set(i, float64(l)-e.c*float64(t))
+		if e.win != nil {
+			e.win.add(i, z[k])
+		}
 	}
 	g := e.topRSum(t)
-	upd := Update{Frame: e.frameOff + int(t), G: g, Limit: e.limit, Read: e.read}
+	upd := Update{Frame: e.frameOff + int(t), G: g, GPixel: g, Limit: e.limit, Read: e.read}
+	if e.win != nil {
+		e.win.update(t, d)
+		upd.GWindow = e.win.max
+		g = max(g, e.cfg.SpatialScale*e.win.max)
+		upd.G = g
+	}
 	e.t++
 	e.episodeStep(&upd, t)
 	e.planNext()

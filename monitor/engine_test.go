@@ -82,8 +82,11 @@ func TestLazyStateMatchesDirect(t *testing.T) {
 				for _, v := range ls[m-5:] {
 					g += v
 				}
-				if math.Abs(g-upd.G) > 1e-3*math.Max(1, g) {
-					t.Fatalf("frame %d: G = %v, direct %v", f, upd.G, g)
+				if math.Abs(g-upd.GPixel) > 1e-3*math.Max(1, g) {
+					t.Fatalf("frame %d: top-r sum = %v, direct %v", f, upd.GPixel, g)
+				}
+				if p != Spatial && upd.G != upd.GPixel {
+					t.Fatalf("frame %d: G = %v differs from the top-r sum %v", f, upd.G, upd.GPixel)
 				}
 				if p == Adaptive {
 					// The next picks must be the q largest L (up to ties).

@@ -165,6 +165,9 @@ func (e *Engine) findRegions(t int32) {
 	for _, i := range wk.cand {
 		wk.in[i] = 0
 	}
+	if e.win != nil {
+		e.windowRegions()
+	}
 	sortRegions(e.regions)
 }
 

@@ -40,7 +40,9 @@ type Alarm struct {
 // the next Step; copy what you keep.
 type Update struct {
 	Frame   int     // frame index (Config.FirstFrame + steps so far - 1)
-	G       float64 // global statistic: sum of the top-r local statistics
+	G       float64 // global statistic: sum of the top-r local statistics (spatial: max(GPixel, SpatialScale*GWindow))
+	GPixel  float64 // sum of the top-r local statistics
+	GWindow float64 // spatial policy: largest pooled window statistic (at least SpatialHot); else 0
 	Limit   float64 // h
 	State   State
 	Read    []int32  // streams read at this frame
