@@ -7,6 +7,8 @@ import (
 	"math/rand/v2"
 	"os"
 	"runtime"
+	"slices"
+	"strconv"
 	"strings"
 	"testing"
 	"time"
@@ -79,9 +81,14 @@ func smallCfg(p Policy) Config {
 // TestCalibrateHonestSmall: fresh verification paths at the calibrated
 // limit give the target ARL0 (16 x 16 grid, 3% budget, target 200).
 func TestCalibrateHonestSmall(t *testing.T) {
-	for _, p := range []Policy{Adaptive, Random} {
+	for _, p := range append(slices.Clone(Policies), Oracle) {
 		t.Run(string(p), func(t *testing.T) {
-			cal, err := Calibrate(context.Background(), CalibrationSpec{Config: smallCfg(p), TargetARL0: 200,
+			cfg := smallCfg(p)
+			if p == Oracle {
+				cfg.Oracle = Disk(16, 16, 8, 8, 2)
+				cfg.Budget, cfg.Compensation = len(cfg.Oracle), 1e-12
+			}
+			cal, err := Calibrate(context.Background(), CalibrationSpec{Config: cfg, TargetARL0: 200,
 				Paths: 120, Verify: 240, Burnin: 300, Seed: 3})
 			if err != nil {
 				t.Fatal(err)
@@ -222,29 +229,50 @@ func longTests(t *testing.T) {
 }
 
 // TestCalibrateHonest128 is the calibration honesty check of issue 2:
-// 128 x 128, 3% budget, r = 10, target 1000, every policy: fresh
-// verification within 10% of the target.
+// 128 x 128, 3% budget, r = 10, target 1000, every policy (oracle on a
+// radius-4 disk). The limit comes from Paths in-control paths after the
+// default burn-in; it is then verified on as many fresh paths after twice
+// that burn-in, which also shows the limit holds in the steady state (a
+// statistic still drifting up after the default burn-in would alarm sooner
+// after the longer one). Both estimates are Monte Carlo: with 1000 paths
+// each carries about 3.2% s.e. (the run length is close to geometric, so
+// s.e. ~ ARL0/sqrt(alarms)), 4.5% combined, so 10% is over 2 combined s.e.
+// With the default 200 paths the calibration alone carries about 7% and a
+// 10% check fails often by chance; that, not a bias, was what earlier
+// 300-path runs showed (full +18%, random +11%, oracle -8%, each within
+// 1.5 combined s.e.). SPARSEWATCH_HONEST_PATHS overrides the path count.
 func TestCalibrateHonest128(t *testing.T) {
 	longTests(t)
+	paths := 1000
+	if v := os.Getenv("SPARSEWATCH_HONEST_PATHS"); v != "" {
+		n, err := strconv.Atoi(v)
+		if err != nil || n < 50 {
+			t.Fatalf("SPARSEWATCH_HONEST_PATHS=%q: want a path count >= 50", v)
+		}
+		paths = n
+	}
 	for _, p := range append(append([]Policy{}, Policies...), Oracle) {
 		t.Run(string(p), func(t *testing.T) {
 			cfg := Config{Width: 128, Height: 128, Budget: 492, TopR: 10, Policy: p}
-			paths, verify := 300, 600
 			if p == Full {
 				cfg.Budget = 16384
-				paths, verify = 100, 200 // 50x the cost per frame
 			}
 			if p == Oracle {
 				cfg.Oracle = Disk(128, 128, 64, 64, 4)
 				cfg.Budget, cfg.Compensation = len(cfg.Oracle), 1e-12
 			}
-			cal, err := Calibrate(context.Background(), CalibrationSpec{Config: cfg, TargetARL0: 1000, Paths: paths, Verify: verify, Seed: 21})
+			cal, err := Calibrate(context.Background(), CalibrationSpec{Config: cfg, TargetARL0: 1000, Paths: paths, Verify: -1, Seed: 21})
 			if err != nil {
 				t.Fatal(err)
 			}
-			t.Logf("%s: h = %.3f, ARL0 %.0f ± %.0f, verified %.0f ± %.0f", p, cal.Limit, cal.ARL0, cal.ARL0SE, cal.VerifiedARL0, cal.VerifiedSE)
-			if math.Abs(cal.VerifiedARL0-1000) > 100 {
-				t.Errorf("verified ARL0 %.0f ± %.0f, want 1000 within 10%%", cal.VerifiedARL0, cal.VerifiedSE)
+			v, err := Verify(context.Background(), VerifySpec{Config: cfg, Limit: cal.Limit, Paths: paths, Burnin: 2 * cal.Burnin, Seed: 22})
+			if err != nil {
+				t.Fatal(err)
+			}
+			t.Logf("%s: h = %.3f (burn-in %d), calibration ARL0 %.0f ± %.0f; fresh paths after a %d-frame burn-in: ARL0 %.0f ± %.0f (%d of %d alarmed)",
+				p, cal.Limit, cal.Burnin, cal.ARL0, cal.ARL0SE, 2*cal.Burnin, v.ARL0, v.SE, v.Alarms, v.Paths)
+			if math.Abs(v.ARL0-1000) > 100 {
+				t.Errorf("steady-state ARL0 %.0f ± %.0f at h = %.3f, want 1000 within 10%%", v.ARL0, v.SE, cal.Limit)
 			}
 		})
 	}
