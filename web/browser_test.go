@@ -71,10 +71,12 @@ func newBrowser(t testing.TB, timeout time.Duration, extra ...chromedp.ExecAlloc
 }
 
 // newTestServer starts a server with a fresh data folder on 127.0.0.1 (a
-// secure context, so getUserMedia works over plain http) for one test.
-func newTestServer(t *testing.T) *httptest.Server {
+// secure context, so getUserMedia works over plain http) for one test; it
+// may fetch camera URLs under allowCameraURL.
+func newTestServer(t *testing.T, allowCameraURL ...string) *httptest.Server {
 	t.Helper()
-	srv, err := server.New(server.Options{DataDir: t.TempDir(), Logger: slog.New(slog.NewTextHandler(io.Discard, nil))})
+	srv, err := server.New(server.Options{DataDir: t.TempDir(), AllowCameraURL: allowCameraURL,
+		Logger: slog.New(slog.NewTextHandler(io.Discard, nil))})
 	if err != nil {
 		t.Fatal(err)
 	}
