@@ -19,6 +19,14 @@ const (
 	// NormalScore: z = Phi^-1((rank + 0.5)/(N + 1)) against the stream's own
 	// reference values (van der Waerden 1952), distribution-free.
 	NormalScore ModelKind = "normal-score"
+	// SelfStart: each new value is standardised against the running mean and
+	// sd of all earlier in-control values of its stream and mapped through
+	// Student's t to a normal score, so that for normal noise z is exactly
+	// N(0,1) and independent over time however few reference frames there
+	// were (Hawkins 1987, The Statistician 36, "Self-starting CUSUM charts
+	// for location and scale"). The other kinds freeze an estimate whose
+	// error each CUSUM accumulates for ever; see Model.Learn.
+	SelfStart ModelKind = "self-start"
 )
 
 // DefaultScaleFloor is the smallest scale a stream may have, in raw units:
@@ -65,7 +73,10 @@ func NewLearner(m, n int, opt ModelOptions) (*Learner, error) {
 	switch opt.Kind {
 	case Robust, NormalScore:
 		l.vals = make([]float32, m*n)
-	case MeanSD:
+	case MeanSD, SelfStart:
+		if opt.Kind == SelfStart && n < 3 {
+			return nil, fmt.Errorf("monitor: reference frames %d must be at least 3 for the self-start model", n)
+		}
 		l.mean = make([]float64, m)
 		l.m2 = make([]float64, m)
 	default:
@@ -120,6 +131,8 @@ type Model struct {
 	sorted     []float32 // NormalScore: per stream sorted reference values
 	nObs       []int32
 	scores     [][]float32 // NormalScore: z for each half-rank, per sample size
+	mean, m2   []float64   // SelfStart: Welford running mean and sum of squares
+	floor      float32
 }
 
 // Model builds the model from the frames added so far (at least 2).
@@ -128,7 +141,10 @@ func (l *Learner) Model() (*Model, error) {
 		return nil, fmt.Errorf("monitor: reference model needs at least 2 frames, have %d", l.count)
 	}
 	md := &Model{Kind: l.opt.Kind, Loc: make([]float32, l.m), Scale: make([]float32, l.m),
-		Dead: make([]bool, l.m), n: l.n, nObs: l.nObs}
+		Dead: make([]bool, l.m), n: l.n, nObs: l.nObs, floor: l.opt.ScaleFloor}
+	if l.opt.Kind == SelfStart {
+		md.mean, md.m2 = l.mean, l.m2
+	}
 	floor := l.opt.ScaleFloor
 	buf := make([]float32, l.n)
 	for i := 0; i < l.m; i++ {
@@ -196,11 +212,64 @@ func (md *Model) Standardize(z []float32, missing []bool, idx []int32, raw []flo
 			continue
 		}
 		missing[k] = false
-		if md.Kind == NormalScore {
+		switch md.Kind {
+		case NormalScore:
 			z[k] = md.normalScore(i, x)
+		case SelfStart:
+			z[k] = md.selfStartScore(i, x)
+		default:
+			z[k] = (x - md.Loc[i]) / md.Scale[i]
+		}
+	}
+}
+
+// selfStartScore is Hawkins' (1987) self-starting score of x against the
+// n earlier values of stream i: T = (x - mean)/sd * sqrt(n/(n+1)) follows
+// Student's t with n-1 degrees of freedom; z = Phi^-1(F_t(T)).
+func (md *Model) selfStartScore(i int32, x float32) float32 {
+	n := float64(md.nObs[i])
+	t := (float64(x) - md.mean[i]) / float64(md.Scale[i]) * math.Sqrt(n/(n+1))
+	return float32(tToNormal(t, n-1))
+}
+
+// tToNormal maps a Student's t value with nu degrees of freedom to the
+// standard normal value of the same tail probability. For nu >= 30 it uses
+// z = sign(t) sqrt((nu - 1/2) ln(1 + t^2/nu)), a closed-form approximation
+// (Wallace-type, from memory; the test checks it against gonum's exact t
+// CDF: error below 0.002 for |z| <= 6 at nu >= 48); below that, gonum's
+// exact CDF, which costs a microsecond.
+func tToNormal(t, nu float64) float64 {
+	if nu >= 30 {
+		return math.Copysign(math.Sqrt((nu-0.5)*math.Log1p(t*t/nu)), t)
+	}
+	st := distuv.StudentsT{Mu: 0, Sigma: 1, Nu: nu}
+	if t > 0 {
+		return -distuv.UnitNormal.Quantile(st.Survival(t))
+	}
+	return distuv.UnitNormal.Quantile(st.CDF(t))
+}
+
+// Learn folds the in-control values just read into a self-start model
+// (Welford 1962 update of mean and variance); the other kinds ignore it.
+// Call it after the values were standardised and stepped, and not while an
+// alarm is on: a change learnt as "in control" would be absorbed into the
+// reference.
+func (md *Model) Learn(idx []int32, raw []float32, missing []bool) {
+	if md.Kind != SelfStart {
+		return
+	}
+	for k, i := range idx {
+		if missing[k] || md.Dead[i] {
 			continue
 		}
-		z[k] = (x - md.Loc[i]) / md.Scale[i]
+		x := float64(raw[k])
+		n := md.nObs[i] + 1
+		md.nObs[i] = n
+		d := x - md.mean[i]
+		md.mean[i] += d / float64(n)
+		md.m2[i] += d * (x - md.mean[i])
+		sc := float32(math.Sqrt(md.m2[i] / float64(n-1)))
+		md.Loc[i], md.Scale[i] = float32(md.mean[i]), max(sc, md.floor)
 	}
 }
 
@@ -227,4 +296,15 @@ func (md *Model) StandardizeFrame(z []float32, raw []float32) {
 		}
 		z[i] = (x - md.Loc[i]) / md.Scale[i]
 	}
+}
+
+// Clone returns a model that learns on its own: each engine reading its
+// own streams needs its own self-start state. Read-only parts are shared.
+func (md *Model) Clone() *Model {
+	c := *md
+	if md.Kind == SelfStart {
+		c.Loc, c.Scale = slices.Clone(md.Loc), slices.Clone(md.Scale)
+		c.nObs, c.mean, c.m2 = slices.Clone(md.nObs), slices.Clone(md.mean), slices.Clone(md.m2)
+	}
+	return &c
 }

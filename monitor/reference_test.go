@@ -136,3 +136,84 @@ func sortFloat64s(s []float64) {
 		}
 	}
 }
+
+// TestTToNormal checks the t-to-normal map against gonum's exact Student's
+// t CDF and normal quantile: the z it returns must have the same tail
+// probability as t. Tolerances: 0.01 in z at nu = 30 (the switch-over),
+// 0.003 from nu = 48, measured over |z| <= 6.
+func TestTToNormal(t *testing.T) {
+	for _, c := range []struct{ nu, tol float64 }{{2, 1e-6}, {9, 1e-6}, {29, 1e-6}, {30, 0.01}, {48, 0.003}, {148, 0.003}, {1000, 0.003}} {
+		st := distuv.StudentsT{Mu: 0, Sigma: 1, Nu: c.nu}
+		worst := 0.0
+		for x := -40.0; x <= 40; x += 0.01 {
+			var want float64
+			if x > 0 {
+				want = -distuv.UnitNormal.Quantile(st.Survival(x))
+			} else {
+				want = distuv.UnitNormal.Quantile(st.CDF(x))
+			}
+			if math.Abs(want) > 6 {
+				continue
+			}
+			worst = math.Max(worst, math.Abs(tToNormal(x, c.nu)-want))
+		}
+		if worst > c.tol {
+			t.Errorf("nu %v: largest error in z %.4g, want at most %g", c.nu, worst, c.tol)
+		}
+	}
+}
+
+// TestSelfStartRunLength: with only 5 reference frames, a two-sided CUSUM
+// (k = 1/2, h = 4) on self-start scores must have the in-control ARL of a
+// chart whose parameters are known: about 168 from the Brook-Evans chain
+// (Brook & Evans 1972; Montgomery's table gives ~168, from memory), within
+// 6% over 3000 runs. The same chart on scores from the frozen mean/sd of
+// the same 5 frames is far off (its run lengths depend on the estimation
+// error of each run), which the test also shows, so a self-start model
+// that stopped learning would fail.
+func TestSelfStartRunLength(t *testing.T) {
+	const ref, runs, h, k = 5, 3000, 4.0, 0.5
+	want := twoSided(brookEvansARL(h, k, 0, 400), brookEvansARL(h, k, 0, 400))
+	rng := rand.New(rand.NewPCG(3, 4))
+	idx := []int32{0}
+	raw, z, miss := make([]float32, 1), make([]float32, 1), make([]bool, 1)
+	arl := func(kind ModelKind) (mean, median float64) {
+		rl := make([]float64, runs)
+		for r := range rl {
+			lr, err := NewLearner(1, ref, ModelOptions{Kind: kind, ScaleFloor: 1e-6})
+			if err != nil {
+				t.Fatal(err)
+			}
+			for range ref {
+				if err := lr.Add([]float32{float32(100 + 7*rng.NormFloat64())}); err != nil {
+					t.Fatal(err)
+				}
+			}
+			md, err := lr.Model()
+			if err != nil {
+				t.Fatal(err)
+			}
+			var up, dn float64
+			for n := 1; n <= 100000; n++ {
+				raw[0] = float32(100 + 7*rng.NormFloat64())
+				md.Standardize(z, miss, idx, raw)
+				up = math.Max(0, up+float64(z[0])-k)
+				dn = math.Max(0, dn-float64(z[0])-k)
+				if up >= h || dn >= h {
+					rl[r] = float64(n)
+					break
+				}
+				md.Learn(idx, raw, miss)
+			}
+		}
+		sortFloat64s(rl)
+		return stat.Mean(rl, nil), rl[runs/2]
+	}
+	ss, ssMed := arl(SelfStart)
+	within(t, "self-start ARL0 (5 reference frames)", ss, want, 0.06)
+	fixed, fixedMed := arl(MeanSD)
+	t.Logf("median run length: self-start %.0f, frozen mean/sd %.0f (known parameters: about 0.69 x ARL0 = %.0f for a geometric run length)", ssMed, fixedMed, 0.69*want)
+	if math.Abs(fixed-want) < 0.3*want && math.Abs(fixedMed-ssMed) < 0.3*ssMed {
+		t.Errorf("frozen 5-frame mean/sd gives ARL0 %.0f, median %.0f: expected far from %.0f", fixed, fixedMed, want)
+	}
+}

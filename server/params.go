@@ -43,7 +43,7 @@ func DefaultParams() Params {
 	return Params{
 		Budget: "3%", Policy: string(monitor.Adaptive), TopR: 10, Shift: 1,
 		Compensation: 0.25, Tile: 1, ARL0: 10000, ReferenceFrames: 50,
-		Model: "robust", Calibration: "estimated", Seed: 1, Pace: DefaultPace, // seed 1 as scan
+		Model: string(monitor.SelfStart), Calibration: "estimated", Seed: 1, Pace: DefaultPace, // seed 1 as scan
 	}
 }
 

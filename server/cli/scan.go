@@ -33,7 +33,7 @@ func runScan(ctx context.Context, env Env, args []string) error {
 	topR := fs.Int("top-r", d.TopR, "local statistics summed into the global statistic")
 	comp := fs.Float64("compensation", d.Compensation, "compensation for unread streams, as a fraction of its ceiling c_max")
 	seed := fs.Uint64("seed", 1, "random seed (random and thompson policies, calibration)")
-	model := fs.String("model", d.Model, "reference model: robust|normal-score|mean-sd")
+	model := fs.String("model", d.Model, "reference model: self-start (learns on while watching)|robust|normal-score|mean-sd")
 	calib := fs.String("calibration", d.Calibration, "in-control model for the limit: estimated|normal|bootstrap")
 	paths := fs.Int("paths", 0, "calibration paths (0 = the calibrator's default)")
 	limit := fs.Float64("limit", 0, "use this control limit and skip calibration")
@@ -42,7 +42,8 @@ func runScan(ctx context.Context, env Env, args []string) error {
 	statsOut := fs.String("stats", "", "also write frame,G,limit,pixels_read for every watched frame to FILE.csv")
 	compare := fs.String("compare", "", "run several policies on the same frames, e.g. adaptive,random,full, and print a table")
 	truthPath := fs.String("truth", "", "ground truth (truth.json of a demo scenario): the table then shows delay and whether the box holds the centre")
-	htmlOut := fs.String("html", "", "also write a self-contained HTML report (statistic chart, alarm pictures) to FILE.html")
+	htmlOut := fs.String("report", "", "also write a self-contained HTML report (parameters, statistic chart, alarm pictures, alarm table) to FILE.html")
+	fs.StringVar(htmlOut, "html", "", "the same as --report")
 	maxPixels := fs.Int64("max-pixels", frames.DefaultMaxPixels, "refuse frames with more pixels than this")
 	pos, err := parseInterspersed(fs, args)
 	if err != nil {

@@ -53,7 +53,7 @@ func TestScanReportContract(t *testing.T) {
 	stats := filepath.Join(t.TempDir(), "stats.csv")
 	// A fixed limit keeps the test fast; calibration is tested in review.
 	html := filepath.Join(t.TempDir(), "report.html")
-	out, stderr, err := runCmd(t, nil, dir, "--budget", "20%", "--warmup", "30", "--limit", "250", "--alarms", alarms, "--stats", stats, "--html", html)
+	out, stderr, err := runCmd(t, nil, dir, "--budget", "20%", "--warmup", "30", "--limit", "250", "--alarms", alarms, "--stats", stats, "--report", html)
 	if err != nil {
 		t.Fatalf("scan: %v\n%s", err, stderr)
 	}

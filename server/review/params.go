@@ -24,7 +24,7 @@ type Params struct {
 	Tile            int     `json:"tile"`         // k x k tile means as streams
 	ARL0            float64 `json:"arl0"`         // target in-control run length, frames
 	ReferenceFrames int     `json:"reference_frames"`
-	Model           string  `json:"model"` // robust|normal-score|mean-sd
+	Model           string  `json:"model"` // self-start|robust|normal-score|mean-sd
 	Seed            uint64  `json:"seed"`
 
 	// Limit, when > 0, is used as the control limit and calibration is
@@ -56,7 +56,7 @@ const DefaultWork = 5e8
 // DefaultParams returns the documented defaults.
 func DefaultParams() Params {
 	return Params{Budget: "3%", Policy: string(monitor.Adaptive), TopR: 10, Shift: 1, Compensation: 0.25,
-		Tile: 1, ARL0: 10000, ReferenceFrames: 50, Model: string(monitor.Robust), Calibration: "estimated"}
+		Tile: 1, ARL0: 10000, ReferenceFrames: 50, Model: string(monitor.SelfStart), Calibration: "estimated"}
 }
 
 // ParseBudget reads "3%", "0.03" (a fraction below 1) or "500" (a stream
@@ -128,9 +128,9 @@ func (p Params) Validate() error {
 		return fmt.Errorf("work %v must be >= 0", p.Work)
 	}
 	switch monitor.ModelKind(p.Model) {
-	case monitor.Robust, monitor.NormalScore, monitor.MeanSD:
+	case monitor.Robust, monitor.NormalScore, monitor.MeanSD, monitor.SelfStart:
 	default:
-		return fmt.Errorf("model %q unknown (choose robust, normal-score or mean-sd)", p.Model)
+		return fmt.Errorf("model %q unknown (choose self-start, robust, normal-score or mean-sd)", p.Model)
 	}
 	switch p.Calibration {
 	case "", "estimated", "normal", "bootstrap":

@@ -77,7 +77,7 @@ func TestRunFindsChange(t *testing.T) {
 func TestNormalCalibrationUnderstatesFalseAlarms(t *testing.T) {
 	sp := frames.Synthetic{Width: 24, Height: 18, Frames: 350, Level: 1000, Noise: 10, Seed: 5, ChangeFrame: -1}
 	p := DefaultParams()
-	p.Budget, p.ARL0, p.Paths, p.Policy, p.Burnin = "10%", 500, 24, "adaptive", 300
+	p.Budget, p.ARL0, p.Paths, p.Policy, p.Burnin, p.Model = "10%", 500, 24, "adaptive", 300, "robust"
 	counts := map[string]int{}
 	for _, cal := range []string{"normal", "estimated"} {
 		p.Calibration = cal
@@ -93,5 +93,53 @@ func TestNormalCalibrationUnderstatesFalseAlarms(t *testing.T) {
 	}
 	if counts["estimated"] != 0 {
 		t.Errorf("estimated calibration gave %d false alarms in 300 frames at ARL0 500", counts["estimated"])
+	}
+}
+
+// The self-start model scores each value against everything its stream
+// saw before (Hawkins 1987), so the normal-model limit holds without a
+// simulated estimation error. At one limit calibrated on the normal model
+// for ARL0 500, 30 in-control sequences of 300 watched frames after only 20
+// reference frames give, by the censored-exponential estimate (frames
+// watched up to the first alarm, summed, over the number of sequences that
+// alarmed), an ARL0 near 500 for self-start, and far less for the frozen
+// robust model of the same 20 frames.
+func TestSelfStartHoldsNormalLimit(t *testing.T) {
+	p := DefaultParams()
+	p.Budget, p.ARL0, p.Paths, p.Policy, p.Burnin, p.Calibration, p.ReferenceFrames = "10%", 500, 200, "adaptive", 300, "normal", 20
+	seq := func(seed uint64) frames.Source {
+		return synth(t, frames.Synthetic{Width: 24, Height: 18, Frames: 320, Level: 1000, Noise: 10, Seed: 100 + seed, ChangeFrame: -1})
+	}
+	rep, err := Run(context.Background(), seq(0), p, Hooks{})
+	if err != nil {
+		t.Fatal(err)
+	}
+	p.Limit = rep.ControlLimit
+	arl := func(model string) (float64, int) {
+		q := p
+		q.Model = model
+		var watched, alarmed int
+		for seed := uint64(1); seed <= 30; seed++ {
+			rep, err := Run(context.Background(), seq(seed), q, Hooks{})
+			if err != nil {
+				t.Fatal(err)
+			}
+			if len(rep.Alarms) > 0 {
+				alarmed++
+				watched += rep.Alarms[0].Frame - rep.FirstWatched + 1
+			} else {
+				watched += rep.FramesWatched
+			}
+		}
+		return float64(watched) / float64(max(alarmed, 1)), alarmed
+	}
+	ss, ssN := arl("self-start")
+	rb, rbN := arl("robust")
+	t.Logf("limit %.2f for ARL0 500 (normal model); ARL0 estimate: self-start %.0f (%d of 30 alarmed), robust %.0f (%d of 30)", p.Limit, ss, ssN, rb, rbN)
+	if ss < 250 || ss > 1000 {
+		t.Errorf("self-start ARL0 %.0f at the normal limit, want about 500 (250..1000 for 30 censored runs)", ss)
+	}
+	if rb > 0.5*ss {
+		t.Errorf("frozen robust model: ARL0 %.0f, self-start %.0f; the frozen model should alarm far sooner", rb, ss)
 	}
 }

@@ -94,6 +94,7 @@ func RunPolicies(ctx context.Context, src frames.Source, p Params, policies []st
 // run is one policy's engine and tallies.
 type run struct {
 	p      Params
+	model  *monitor.Model // its own copy: a self-start model learns from what this run reads
 	cfg    monitor.Config
 	eng    *monitor.Engine
 	cal    *Calibration
@@ -241,7 +242,9 @@ func (rv *reviewer) calibrate(ctx context.Context) error {
 	for _, r := range rv.runs {
 		needCal = needCal || r.p.Limit <= 0
 	}
-	if needCal && (rv.p.Calibration == "" || rv.p.Calibration == "estimated") {
+	// A self-start model's scores are N(0,1) whatever the reference error,
+	// so "estimated" is the normal model for it.
+	if needCal && (rv.p.Calibration == "" || rv.p.Calibration == "estimated") && rv.model.Kind != monitor.SelfStart {
 		b := estimatedFrameCount
 		for b > 16 && int64(b)*int64(m) > 1<<26 {
 			b /= 2
@@ -304,6 +307,7 @@ func (rv *reviewer) calibrate(ctx context.Context) error {
 		if r.eng, err = monitor.New(r.cfg); err != nil {
 			return fmt.Errorf("review: %w", err)
 		}
+		r.model = rv.model.Clone()
 		r.raw, r.z, r.miss = make([]float32, m), make([]float32, m), make([]bool, m)
 		r.open = -1
 	}
@@ -371,7 +375,7 @@ func (rv *reviewer) step(ri int, r *run, it frames.Item) error {
 	}
 	px := rv.tiler.PixelsPerStream(idx)
 	r.pixels += px
-	rv.model.Standardize(z, miss, idx, raw)
+	r.model.Standardize(z, miss, idx, raw)
 	valid := 0
 	for _, m := range miss {
 		if !m {
@@ -384,6 +388,9 @@ func (rv *reviewer) step(ri int, r *run, it frames.Item) error {
 	upd, err := r.eng.Step(z, miss)
 	if err != nil {
 		return err
+	}
+	if r.model != nil && upd.State == monitor.Watching {
+		r.model.Learn(idx, raw, miss)
 	}
 	r.stepAt = append(r.stepAt, int32(it.Index))
 	r.frames++
