@@ -65,13 +65,21 @@ func (s *Server) routes() *echo.Echo {
 	e.GET("/watch/:id", page)
 	e.GET("/share/:token", func(c echo.Context) error {
 		if s.shareSession(c.Param("token")) == nil {
-			return errorf(KindNotFound, "this share link is not valid")
+			// A person followed this link: answer a page, not JSON.
+			return c.HTML(http.StatusNotFound, badShareLinkPage)
 		}
 		return s.servePage(c)
 	})
 	e.StaticFS("/", web.FS)
 	return e
 }
+
+// badShareLinkPage answers a share link that names no session (mistyped,
+// or the session was deleted).
+const badShareLinkPage = `<!doctype html><html lang="en"><head><meta charset="utf-8"><title>Link not valid - sparsewatch</title>
+<link rel="stylesheet" href="/style.css"></head><body><main class="card"><h1>This watch link is not valid</h1>
+<p>No session answers to it: the link may be mistyped or cut short, or the session was deleted. Ask the person who shared it for a new one.</p>
+<p><a href="/">Go to the start page</a></p></main></body></html>`
 
 // httpError is echo's error handler: statusOf picks the code, internal
 // errors are logged in full and answered with a generic message.

@@ -168,6 +168,10 @@ func TestUnknownSession(t *testing.T) {
 	if code, _ := ts.do(t, "PATCH", "/api/sessions/nope/params", "x", "application/json", strings.NewReader("{}")); code != http.StatusNotFound {
 		t.Errorf("PATCH unknown: %d, want 404", code)
 	}
+	// A person following a bad share link gets a page that says so.
+	if _, b := ts.do(t, "GET", "/share/nope", "", "", nil); !strings.Contains(string(b), "<html") || !strings.Contains(string(b), "not valid") {
+		t.Errorf("GET /share/nope: %.200s; want an HTML page saying the link is not valid", b)
+	}
 }
 
 func TestOversizeUpload(t *testing.T) {

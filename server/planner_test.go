@@ -350,6 +350,7 @@ func TestMeasureFurnaceBootstrap(t *testing.T) {
 		n       int
 	}
 	measure := func(h float64, seed0 uint64) out {
+		md := md.Clone() // each measurement learns on its own frames
 		c := cfg
 		c.Limit = h
 		eng, err := monitor.New(c)
@@ -382,6 +383,9 @@ func TestMeasureFurnaceBootstrap(t *testing.T) {
 			u, err := eng.Step(z[:len(idx)], miss[:len(idx)])
 			if err != nil {
 				t.Fatal(err)
+			}
+			if u.State == monitor.Watching { // as the review does: a self-start model learns on
+				md.Learn(idx, vals, miss[:len(idx)])
 			}
 			return u.G
 		}
