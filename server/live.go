@@ -107,6 +107,35 @@ type liveFeed struct {
 	samples      []rateSample
 	arl0         float64
 	endErr       error // why a pipe ended (nil: clean end of input)
+
+	// The latest frame kept for previews: a live frame cannot be read
+	// again, so share viewers would otherwise see no picture.
+	shotMu    sync.Mutex
+	shot      frames.Frame
+	shotIndex int
+	shotAt    time.Time
+}
+
+// keepShot copies frame i for previews, at most once per previewPeriod.
+func (f *liveFeed) keepShot(i int, fr *frames.Frame) {
+	f.shotMu.Lock()
+	defer f.shotMu.Unlock()
+	if now := time.Now(); now.Sub(f.shotAt) >= previewPeriod {
+		f.shotAt, f.shotIndex = now, i
+		f.shot.Width, f.shot.Height, f.shot.Stride = fr.Width, fr.Height, fr.Stride
+		f.shot.Pix = append(f.shot.Pix[:0], fr.Pix...)
+	}
+}
+
+// shotImage encodes the kept frame as a preview message, or fails when no
+// frame arrived yet.
+func (f *liveFeed) shotImage() ([]byte, error) {
+	f.shotMu.Lock()
+	defer f.shotMu.Unlock()
+	if f.shot.Pix == nil {
+		return nil, errors.New("server: no live frame yet")
+	}
+	return encodePreview(f.shotIndex, gridImage{W: f.shot.Width, H: f.shot.Height, Stride: f.shot.Stride, Pix: f.shot.Pix}), nil
 }
 
 type rateSample struct {
@@ -336,6 +365,7 @@ func (ls *liveSource) Next() (frames.Item, error) {
 	}
 	if p.frame != nil {
 		it.Frame, it.Pixels = p.frame, p.frame
+		ls.feed.keepShot(i, p.frame)
 		return it, nil
 	}
 	if _, err := frames.Decode(p.data, ls.maxPixels, &ls.fr); err != nil {
@@ -344,6 +374,7 @@ func (ls *liveSource) Next() (frames.Item, error) {
 		return it, nil
 	}
 	it.Frame, it.Pixels = &ls.fr, &ls.fr
+	ls.feed.keepShot(i, &ls.fr)
 	return it, nil
 }
 

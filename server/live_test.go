@@ -715,3 +715,63 @@ func TestBrowserCameraAcks(t *testing.T) {
 	case <-time.After(100 * time.Millisecond):
 	}
 }
+
+// TestLivePreviewForViewers: a live frame cannot be read again, so the
+// server keeps the latest one for previews; a share viewer of a camera
+// session gets pictures (binary kind 2, PNG or JPEG) of the frames' size.
+func TestLivePreviewForViewers(t *testing.T) {
+	shots := furnaceJPEGs(t)[:40]
+	ts := mustServer(t, Options{})
+	code, cr, body := ts.createJSON(t, `{"source":{"kind":"browser-camera"},"params":`+liveParamsFix+`}`)
+	if code != http.StatusCreated {
+		t.Fatalf("%d %s", code, body)
+	}
+	viewer, _, err := dialWS(t, ts, cr.ID, cr.ShareToken, nil)
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer viewer.Close()
+	got := make(chan image.Image, 1)
+	go func() {
+		for {
+			kind, msg, err := viewer.ReadMessage()
+			if err != nil {
+				return
+			}
+			if kind == websocket.BinaryMessage && len(msg) > 8 && msg[0] == 2 {
+				if img, _, err := image.Decode(bytes.NewReader(msg[8:])); err == nil {
+					select {
+					case got <- img:
+					default:
+					}
+				}
+			}
+		}
+	}()
+	owner, _, err := dialWS(t, ts, cr.ID, cr.OwnerToken, nil)
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer owner.Close()
+	deadline := time.After(15 * time.Second)
+	for i := 0; ; i++ {
+		if err := owner.WriteMessage(websocket.BinaryMessage, shots[i%len(shots)]); err != nil {
+			t.Fatal(err)
+		}
+		select {
+		case img := <-got:
+			// Previews are downsampled to at most previewSide a side;
+			// the shape is the camera's 320 x 240.
+			if b := img.Bounds(); b.Dx()*240 != b.Dy()*320 || max(b.Dx(), b.Dy()) > previewSide || b.Dx() < 100 {
+				t.Fatalf("preview is %v, want the 4:3 shape of the camera's 320 x 240 frames", b)
+			}
+			if lo, hi := rangeOf(img); lo == hi {
+				t.Fatalf("preview is flat (all %d)", lo)
+			}
+			return
+		case <-deadline:
+			t.Fatal("the share viewer got no picture of the live frames within 15 s")
+		case <-time.After(50 * time.Millisecond):
+		}
+	}
+}

@@ -70,6 +70,12 @@ func (s *Session) previewOf(index int, name string) ([]byte, error) {
 	var fr frames.Frame
 	opts := frames.Options{MaxPixels: int64(s.srv.opt.MaxPixels), MaxFileBytes: s.srv.maxFileBytes()}
 	switch {
+	case isLiveKind(m.Source.Kind):
+		feed, err := s.feedOf()
+		if err != nil {
+			return nil, err
+		}
+		return feed.shotImage()
 	case m.Source.Kind == "demo":
 		sc, err := lookupDemo(m.Source.Scenario)
 		if err != nil {
@@ -162,7 +168,7 @@ func (s *Session) seek(v *viewer, f int) {
 // source listing (natural order, as the review counts frames).
 func (s *Session) frameName(f int) (string, bool) {
 	m := s.metaCopy()
-	if m.Source.Kind == "demo" {
+	if m.Source.Kind == "demo" || isLiveKind(m.Source.Kind) { // live: the latest kept frame
 		return "", f >= 0
 	}
 	s.mu.Lock()

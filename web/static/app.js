@@ -1633,8 +1633,8 @@
   }
 
   // localPreview shows the picture just sent under the read pixels, at most
-  // five times a second: the server sends no pictures of live frames, and
-  // this page has them at hand.
+  // five times a second: the server's pictures of live frames (which share
+  // viewers see) come later than this page has its own at hand.
   function localPreview() {
     const now = performance.now();
     if (now - (cam.previewAt || 0) < 200) return;
