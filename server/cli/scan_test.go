@@ -150,3 +150,56 @@ func readCSV(t *testing.T, path string) [][]string {
 	}
 	return rows
 }
+
+// TestScanDemoScenarios is the end-to-end check of the demo scenarios with
+// the default settings (3% budget, ARL0 10^4, self-start model): demo, then
+// scan; the first alarm after the change holds the truth centre in its box
+// and at most one alarm comes before the change. Calibration at these sizes
+// takes minutes, so it runs with SPARSEWATCH_LONG=1 only:
+//
+//	SPARSEWATCH_LONG=1 go test -count=1 -run TestScanDemoScenarios -v ./server/cli/
+func TestScanDemoScenarios(t *testing.T) {
+	if os.Getenv("SPARSEWATCH_LONG") == "" {
+		t.Skip("long: set SPARSEWATCH_LONG=1 (a few minutes)")
+	}
+	for _, name := range []string{"furnace", "starfield"} {
+		t.Run(name, func(t *testing.T) {
+			dir := filepath.Join(t.TempDir(), name)
+			var out, errb bytes.Buffer
+			if err := runDemo(context.Background(), Env{Stdout: &out, Stderr: &errb}, []string{"--scenario", name, "--out", dir}); err != nil {
+				t.Fatalf("demo: %v %s", err, errb.String())
+			}
+			truth, err := readTruth(filepath.Join(dir, "truth.json"))
+			if err != nil {
+				t.Fatal(err)
+			}
+			js, stderr, err := runCmd(t, nil, dir, "--budget", "3%", "--arl0", "10000")
+			if err != nil {
+				t.Fatalf("scan: %v\n%s", err, stderr)
+			}
+			var rep review.Report
+			if err := json.Unmarshal([]byte(js), &rep); err != nil {
+				t.Fatal(err)
+			}
+			before := 0
+			var first *review.Alarm
+			for i := range rep.Alarms {
+				a := &rep.Alarms[i]
+				if a.Frame < truth.ChangeFrame {
+					before++
+				} else if first == nil {
+					first = a
+				}
+			}
+			if before > 1 || first == nil || len(first.Regions) == 0 {
+				t.Fatalf("%d alarms before the change at %d; first after it: %+v", before, truth.ChangeFrame, first)
+			}
+			b, cx, cy := first.Regions[0].BBox, truth.Centre[0], truth.Centre[1]
+			if !(float64(b[0]) <= cx && cx <= float64(b[2]) && float64(b[1]) <= cy && cy <= float64(b[3])) {
+				t.Errorf("first region %v misses the centre (%v, %v)", b, cx, cy)
+			}
+			t.Logf("%s: limit %.2f, alarm at %d (delay %d), box %v, %d pixels read of %d frames x %d", name, rep.ControlLimit,
+				first.Frame, first.Frame-truth.ChangeFrame, b, rep.PixelsRead, rep.Frames, rep.Width*rep.Height)
+		})
+	}
+}
