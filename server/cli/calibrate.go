@@ -12,7 +12,7 @@ import (
 // runCalibrate prints the control limit for a target in-control ARL0, its
 // check on fresh paths, and how the limit was found.
 func runCalibrate(ctx context.Context, env Env, args []string) error {
-	fs := newFlags(env, "calibrate", "calibrate [--width W --height H --budget 3% --arl0 N --policy P --top-r R --shift D --compensation F] [--paths N] [--json]")
+	fs := newFlags(env, "calibrate", "calibrate [--width W --height H | --reference DIR [--tile K --warmup N]] [--budget 3% --arl0 N --policy P --top-r R --shift D --compensation F] [--paths N] [--json]")
 	width := fs.Int("width", 128, "grid width in streams")
 	height := fs.Int("height", 128, "grid height in streams")
 	budget := fs.String("budget", "3%", `streams read per frame: "3%", "0.03" or a count "500"`)
@@ -32,6 +32,9 @@ func runCalibrate(ctx context.Context, env Env, args []string) error {
 	zeroCheck := fs.Bool("zero-state-check", false, "also calibrate from zero state and measure that limit's steady-state ARL0")
 	seed := fs.Uint64("seed", 1, "random seed")
 	asJSON := fs.Bool("json", false, "print the result as JSON")
+	refDir := fs.String("reference", "", "bootstrap from this folder (or .zip) of in-control frames instead of the normal model; the grid is the frames' size / --tile")
+	tile := fs.Int("tile", 1, "with --reference: k x k tile means as streams")
+	warmup := fs.Int("warmup", 50, "with --reference: reference frames to read")
 	if err := parse(fs, args); err != nil {
 		return err
 	}
@@ -53,6 +56,13 @@ func runCalibrate(ctx context.Context, env Env, args []string) error {
 	if pol == monitor.Oracle {
 		return fmt.Errorf("the oracle policy exists in simulation only (see plan)")
 	}
+	var boot [][]float32
+	if *refDir != "" {
+		if boot, *width, *height, err = referenceBootstrap(*refDir, *tile, *warmup); err != nil {
+			return err
+		}
+		fmt.Fprintf(env.Stderr, "calibrate: bootstrap from %d reference frames of %s (%d x %d streams)\n", len(boot), *refDir, *width, *height)
+	}
 	m := *width * *height
 	q, err := monitor.BudgetStreams(bs[0], m)
 	if err != nil {
@@ -61,7 +71,7 @@ func runCalibrate(ctx context.Context, env Env, args []string) error {
 	cfg := monitor.Config{Width: *width, Height: *height, Budget: q, TopR: *topR, Shift: *shift, Policy: pol,
 		CompFraction: *comp, Compensation: *compAbs}
 	spec := monitor.CalibrationSpec{Config: cfg, TargetARL0: *arl0, Paths: *paths, Verify: *verify, Burnin: *burnin,
-		Horizon: *horizon, WorkCap: *work, Chains: *chains, Gap: *gap, Seed: *seed}
+		Horizon: *horizon, WorkCap: *work, Chains: *chains, Gap: *gap, Seed: *seed, Bootstrap: boot}
 	prog := newProgressLine(env.Stderr, "calibrate")
 	spec.Progress = prog.update
 	start := time.Now()
