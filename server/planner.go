@@ -541,60 +541,21 @@ func (s *Server) planBootFrames(ctx context.Context, sess *Session, tile, gw, gh
 		return nil, "", err
 	}
 	defer src.Close()
-	var (
-		tiler *frames.Tiler
-		lr    *monitor.Learner
-		full  frames.Frame
-		raw   [][]float32
-	)
-	for len(raw) < n {
-		if err := ctx.Err(); err != nil {
-			return nil, "", err
+	check := func(t *frames.Tiler) error {
+		if t.GW != gw || t.GH != gh {
+			return errorf(KindInvalid, "plan: a bootstrap needs the session's frame size (%d x %d pixels, %d x %d streams at tile %d)", t.W, t.H, t.GW, t.GH, tile)
 		}
-		it, err := src.Next()
-		if errors.Is(err, io.EOF) {
-			break
+		if int64(t.Streams())*int64(n) > planBootMax {
+			return errorf(KindInvalid, "plan: %d reference frames of %d streams are too many for a bootstrap; use a larger tile", n, t.Streams())
 		}
-		if err != nil {
-			return nil, "", err
-		}
-		if it.Err != nil {
-			continue
-		}
-		f, _, err := frames.Full(it, &full)
-		if err != nil || frames.CheckAnyValid(f) != nil {
-			continue
-		}
-		if tiler == nil {
-			if tiler, err = frames.NewTiler(f.Width, f.Height, tile); err != nil {
-				return nil, "", err
-			}
-			if tiler.GW != gw || tiler.GH != gh {
-				return nil, "", errorf(KindInvalid, "plan: a bootstrap needs the session's frame size (%d x %d pixels, %d x %d streams at tile %d)", f.Width, f.Height, tiler.GW, tiler.GH, tile)
-			}
-			if int64(tiler.Streams())*int64(n) > planBootMax {
-				return nil, "", errorf(KindInvalid, "plan: %d reference frames of %d streams are too many for a bootstrap; use a larger tile", n, tiler.Streams())
-			}
-			if lr, err = monitor.NewLearner(tiler.Streams(), n, monitor.ModelOptions{Kind: monitor.ModelKind(m.Params.Model)}); err != nil {
-				return nil, "", err
-			}
-		}
-		v := make([]float32, tiler.Streams())
-		tiler.Means(f, v)
-		if err := lr.Add(v); err != nil {
-			return nil, "", err
-		}
-		raw = append(raw, v)
+		return nil
 	}
-	if len(raw) < 2 {
-		return nil, "", errorf(KindInvalid, "plan: the session has %d good reference frames; a bootstrap needs at least 2", len(raw))
+	raw, _, err := review.BootstrapFrames(ctx, src, tile, n, monitor.ModelKind(m.Params.Model), check)
+	if errors.Is(err, review.ErrTooFewReference) {
+		return nil, "", errorf(KindInvalid, "plan: the session has too few good reference frames; a bootstrap needs at least 2")
 	}
-	md, err := lr.Model()
 	if err != nil {
 		return nil, "", err
-	}
-	for _, v := range raw {
-		md.StandardizeFrame(v, append([]float32(nil), v...))
 	}
 	note := fmt.Sprintf("limits calibrated on a bootstrap of the session's %d reference frames, standardised with its %s model (real noise and spatial correlation); delays simulated with independent standard normal noise at those limits", len(raw), m.Params.Model)
 	return raw, note, nil
