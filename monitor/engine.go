@@ -1,10 +1,12 @@
 package monitor
 
 import (
+	"cmp"
 	"fmt"
 	"math"
 	"math/bits"
 	"math/rand/v2"
+	"slices"
 )
 
 // Engine is the budgeted-read change detector for one grid of streams.
@@ -31,6 +33,12 @@ type Engine struct {
 	rank     *rankIndex
 	t        int32 // frames stepped so far
 	frameOff int
+
+	// full policy fast path (stepFull): no rank upkeep per frame
+	fast      bool      // Policy Full and not forced onto the general path
+	heap      []float32 // min-heap of the r largest L of the frame
+	syncFn    func()    // e.syncRank, bound once so marking stale allocates nothing
+	resetLast int32     // e.last of every stream at the last resetStats
 
 	read, next []int32  // streams read at this frame / to read at the next
 	pick       []uint64 // bitmap used to emit picks in ascending order
@@ -90,6 +98,9 @@ func New(cfg Config) (*Engine, error) {
 	e.regions = make([]Region, 0, maxRegions)
 	e.peakRegions = make([]Region, 0, maxRegions)
 	e.rank = newRankIndex(m, e.c)
+	e.fast = cfg.Policy == Full
+	e.heap = make([]float32, 0, e.r)
+	e.syncFn = e.syncRank
 	e.Reset()
 	return e, nil
 }
@@ -122,6 +133,7 @@ func (e *Engine) Reset() {
 func (e *Engine) resetStats() {
 	clear(e.u)
 	clear(e.dn)
+	e.resetLast = e.t - 1
 	for i := range e.last {
 		e.last[i] = e.t - 1
 		e.zeroU[i] = e.t - 1
@@ -165,14 +177,36 @@ func (e *Engine) Step(z []float32, missing []bool) (Update, error) {
 		return Update{}, fmt.Errorf("monitor: step got %d missing flags for %d values", len(missing), len(z))
 	}
 	for k, v := range z {
-		if missing != nil && missing[k] {
-			continue
-		}
-		if math.IsNaN(float64(v)) || math.IsInf(float64(v), 0) {
+		// All exponent bits set: NaN or infinite (bit test, cheap at m a frame).
+		if math.Float32bits(v)&0x7f800000 == 0x7f800000 && (missing == nil || !missing[k]) {
 			return Update{}, fmt.Errorf("monitor: value %d (stream %d) is %v; mark it missing instead", k, e.next[k], v)
 		}
 	}
 	e.read, e.next = e.next, e.read
+	t := e.t
+	var g float64
+	if e.fast {
+		g = e.stepFull(z, missing)
+	} else {
+		e.stepRead(z, missing)
+		g = e.topRSum(t)
+	}
+	upd := Update{Frame: e.frameOff + int(t), G: g, GPixel: g, Limit: e.limit, Read: e.read}
+	if e.win != nil {
+		e.win.update(t, float32(e.d))
+		upd.GWindow = e.win.max
+		g = max(g, e.cfg.SpatialScale*e.win.max)
+		upd.G = g
+	}
+	e.t++
+	e.episodeStep(&upd, t)
+	e.planNext()
+	return upd, nil
+}
+
+// stepRead updates the streams in e.read with their values and keeps the
+// rank index in order: the general path, every policy.
+func (e *Engine) stepRead(z []float32, missing []bool) {
 	t := e.t
 	c, d, half := float32(e.c), float32(e.d), float32(e.half)
 	e.rank.slide(-e.c * float64(t))
@@ -205,18 +239,6 @@ func (e *Engine) Step(z []float32, missing []bool) (Update, error) {
 			e.win.add(i, z[k])
 		}
 	}
-	g := e.topRSum(t)
-	upd := Update{Frame: e.frameOff + int(t), G: g, GPixel: g, Limit: e.limit, Read: e.read}
-	if e.win != nil {
-		e.win.update(t, d)
-		upd.GWindow = e.win.max
-		g = max(g, e.cfg.SpatialScale*e.win.max)
-		upd.G = g
-	}
-	e.t++
-	e.episodeStep(&upd, t)
-	e.planNext()
-	return upd, nil
 }
 
 // topRSum returns G at the end of frame t.
@@ -238,21 +260,181 @@ func (e *Engine) Local(dst []float32) []float32 {
 	}
 	dst = dst[:e.m]
 	t := e.t - 1
+	if e.rank.stale != nil {
+		for i := range dst {
+			dst[i] = float32(e.keyOf(int32(i)) + e.c*float64(t))
+		}
+		return dst
+	}
 	for i := range dst {
 		dst[i] = float32(e.currentL(int32(i), t))
 	}
 	return dst
 }
 
+// keyOf returns stream i's rank key from its state, the value Step gives
+// the rank index: L at the last update minus c times that frame.
+func (e *Engine) keyOf(i int32) float64 {
+	l := e.u[i]
+	if e.dn[i] > l {
+		l = e.dn[i]
+	}
+	return float64(l) - e.c*float64(e.last[i])
+}
+
+// stepFull is Step's update for the full policy. Every stream is read and
+// c = 0, so nothing needs ordering: one flat pass updates U and D with the
+// general path's float32 arithmetic (same bits) and keeps the r largest L
+// in a min-heap. Keeping the rank index in order cost ~50 ns a stream, most
+// of the frame, so it is left stale and rebuilt (syncRank) only when
+// something ranks streams, i.e. regions during an alarm.
+//
+// G is the same multiset of r values summed in another order: equal to the
+// general path's bit for bit whenever that float64 sum is exact, which holds
+// unless its nonzero float32 values span a ratio above about 2^29/r; past
+// that the two may differ by float rounding.
+func (e *Engine) stepFull(z []float32, missing []bool) float64 {
+	t := e.t
+	d, half := float32(e.d), float32(e.half)
+	n := len(z)
+	u, dn, last := e.u[:n], e.dn[:n], e.last[:n]
+	zu, zd := e.zeroU[:n], e.zeroD[:n]
+	e.heap = e.heap[:0]
+	floor := float32(math.Inf(-1)) // smallest heap value once it holds r
+	for i, v := range z {
+		ui, di := u[i], dn[i]
+		if missing == nil || !missing[i] {
+			ui = ui + d*v - half
+			di = di - d*v - half
+			// Branch-free form of the general path's onset bookkeeping
+			// (a random 50/50 branch per side costs more than the stores);
+			// max(x, 0) is a no-op when x > half > 0.
+			tu, td := zu[i], zd[i]
+			if ui <= half {
+				tu = t
+			}
+			if di <= half {
+				td = t
+			}
+			ui, di = clampZero(ui), clampZero(di)
+			u[i], dn[i], last[i], zu[i], zd[i] = ui, di, t, tu, td
+		}
+		// Both >= +0 and not NaN, where float order is the bits' order.
+		l := math.Float32frombits(max(math.Float32bits(ui), math.Float32bits(di)))
+		if l > floor {
+			floor = e.offer(l)
+		}
+	}
+	e.rank.stale = e.syncFn
+	var s float64
+	for _, l := range e.heap {
+		s += float64(l)
+	}
+	return s
+}
+
+// clampZero returns max(x, 0) for x not NaN (-0 gives +0, as max does)
+// without the branches max spends on NaN: a set sign bit clears x.
+func clampZero(x float32) float32 {
+	b := math.Float32bits(x)
+	return math.Float32frombits(b &^ uint32(int32(b)>>31))
+}
+
+// offer adds l to the heap of the r largest values seen (the root is the
+// smallest) and returns the value a later one must exceed to enter.
+func (e *Engine) offer(l float32) float32 {
+	h := e.heap
+	if len(h) < e.r {
+		h = append(h, l)
+		for j := len(h) - 1; j > 0; { // sift up
+			p := (j - 1) / 2
+			if h[p] <= h[j] {
+				break
+			}
+			h[p], h[j] = h[j], h[p]
+			j = p
+		}
+		e.heap = h
+		if len(h) < e.r {
+			return float32(math.Inf(-1))
+		}
+		return h[0]
+	}
+	h[0] = l
+	for j := 0; ; { // sift down
+		c := 2*j + 1
+		if c >= len(h) {
+			break
+		}
+		if c+1 < len(h) && h[c+1] < h[c] {
+			c++
+		}
+		if h[j] <= h[c] {
+			break
+		}
+		h[j], h[c] = h[c], h[j]
+		j = c
+	}
+	return h[0]
+}
+
+// syncRank rebuilds the rank index after fast full steps with the exact
+// lists the general path would have left, so topK (regions, ties and the
+// 64-region cap included) answers the same. That path links a stream at
+// its bucket's head at each update, in ascending stream order within a
+// frame, and resetStats links all in descending order; so linking the
+// streams not updated since the reset in descending order, then the rest
+// by (last update, stream) ascending, reproduces every list.
+func (e *Engine) syncRank() {
+	x := e.rank
+	x.clearLists()
+	m := int32(e.m)
+	for i := m - 1; i >= 0; i-- {
+		x.key[i] = e.keyOf(i)
+		if e.last[i] == e.resetLast {
+			x.place(i)
+		}
+	}
+	now := e.t - 1
+	older := e.scrID[:0] // topK overwrites it after this
+	for i := int32(0); i < m; i++ {
+		if l := e.last[i]; l != e.resetLast && l != now {
+			older = append(older, i)
+		}
+	}
+	slices.SortFunc(older, func(a, b int32) int {
+		if c := cmp.Compare(e.last[a], e.last[b]); c != 0 {
+			return c
+		}
+		return cmp.Compare(a, b)
+	})
+	for _, i := range older {
+		x.place(i)
+	}
+	if now == e.resetLast {
+		return
+	}
+	for i := int32(0); i < m; i++ {
+		if e.last[i] == now {
+			x.place(i)
+		}
+	}
+}
+
 // planNext fills e.next with the streams to read at frame e.t.
 func (e *Engine) planNext() {
-	e.next = e.next[:0]
-	switch e.cfg.Policy {
-	case Full:
-		for i := 0; i < e.m; i++ {
-			e.next = append(e.next, int32(i))
+	if e.cfg.Policy == Full {
+		// Both buffers only ever hold 0..m-1: fill each once.
+		if len(e.next) != e.m {
+			e.next = e.next[:0]
+			for i := 0; i < e.m; i++ {
+				e.next = append(e.next, int32(i))
+			}
 		}
 		return
+	}
+	e.next = e.next[:0]
+	switch e.cfg.Policy {
 	case Stride:
 		k := e.sweepLen
 		for i := int(e.t) % k; i < e.m; i += k {

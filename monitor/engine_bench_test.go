@@ -42,3 +42,35 @@ func BenchmarkStatePass(b *testing.B) {
 		e.StatePass()
 	}
 }
+
+// BenchmarkStepFull measures one in-control frame of the full policy, on
+// its fast path and (general) on the path every other policy takes.
+func BenchmarkStepFull(b *testing.B) {
+	for _, size := range []int{512, 1024} {
+		for _, general := range []bool{false, true} {
+			name := fmt.Sprintf("%dx%d", size, size)
+			if general {
+				name += "/general"
+			}
+			b.Run(name, func(b *testing.B) {
+				cfg := Config{Width: size, Height: size, Budget: size * size, TopR: 10, Policy: Full, Seed: 1}
+				e := mustEngine(b, cfg)
+				e.fast = !general
+				rng := rand.New(rand.NewPCG(1, 1))
+				z := make([]float32, cfg.Streams())
+				for k := range z {
+					z[k] = float32(rng.NormFloat64())
+				}
+				for range 3 {
+					e.Step(z, nil)
+				}
+				b.ResetTimer()
+				for i := 0; i < b.N; i++ {
+					if _, err := e.Step(z, nil); err != nil {
+						b.Fatal(err)
+					}
+				}
+			})
+		}
+	}
+}

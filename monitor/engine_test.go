@@ -3,6 +3,7 @@ package monitor
 import (
 	"math"
 	"math/rand/v2"
+	"reflect"
 	"slices"
 	"strings"
 	"testing"
@@ -369,5 +370,144 @@ func TestEpisodeEndsAboveZeroLevel(t *testing.T) {
 	}
 	if starts < 2 || ends < 2 {
 		t.Fatalf("two separate changes gave %d alarm starts and %d ends (in-control G level %.1f, end level %.1f)", starts, ends, base, e.EndLevel())
+	}
+}
+
+// TestFullFastPathMatchesGeneral runs the full policy on its fast path and
+// on the general (rank-index) path with the same seeded input: a change that
+// raises and ends an alarm, scattered and long-lasting missing values (NaN in
+// the missing slots), a Reset, and restart mode. Every Update (G, regions,
+// episodes, state), every stream's U, D, onset frames and local statistic,
+// and the rebuilt rank lists must agree exactly. G is summed in another order
+// on the fast path; it is still equal here because the sum of r float32
+// values is exact in float64 unless they span a ratio above about 2^29/r.
+func TestFullFastPathMatchesGeneral(t *testing.T) {
+	for _, restart := range []bool{false, true} {
+		for r, h := range map[int]float64{1: 12, 5: 60, 480: 1200} {
+			cfg := Config{Width: 24, Height: 20, Budget: 1, TopR: r, Policy: Full, Seed: 4, Limit: h, Restart: restart}
+			fast, slow := mustEngine(t, cfg), mustEngine(t, cfg)
+			slow.fast = false
+			m := cfg.Streams()
+			rng := rand.New(rand.NewPCG(5, 6))
+			z := make([]float32, m)
+			missing := make([]bool, m)
+			var started, ended, regions int
+			for f := 0; f < 700; f++ {
+				if f == 560 {
+					fast.Reset()
+					slow.Reset()
+				}
+				for i := range z {
+					x, y := i%cfg.Width, i/cfg.Width
+					z[i] = float32(rng.NormFloat64())
+					if f >= 150 && f < 210 && x >= 5 && x < 10 && y >= 4 && y < 9 {
+						z[i] += 1.5
+					}
+					// 5% missing at random, and streams 0..39 missing for a stretch.
+					missing[i] = rng.IntN(20) == 0 || (i < 40 && f >= 100 && f < 180 && i%3 != f%3)
+					if missing[i] && rng.IntN(2) == 0 {
+						z[i] = float32(math.NaN())
+					}
+				}
+				var miss []bool
+				if f%7 != 0 {
+					miss = missing
+				} else {
+					for i := range z {
+						if missing[i] {
+							z[i] = 0 // a frame with nothing missing
+						}
+					}
+				}
+				before := slices.Clone(fast.u)
+				uf, errF := fast.Step(z, miss)
+				us, errS := slow.Step(z, miss)
+				if errF != nil || errS != nil {
+					t.Fatalf("frame %d: errors %v, %v", f, errF, errS)
+				}
+				if !reflect.DeepEqual(uf, us) {
+					t.Fatalf("restart %v r %d frame %d: updates differ\nfast    %+v\ngeneral %+v", restart, r, f, uf, us)
+				}
+				for i := range miss {
+					if miss[i] && fast.u[i] != before[i] && (uf.Started == nil || !restart) {
+						t.Fatalf("frame %d: missing stream %d changed U from %v to %v", f, i, before[i], fast.u[i])
+					}
+				}
+				if uf.Started != nil {
+					started++
+				}
+				if uf.Ended != nil {
+					ended++
+				}
+				regions += len(uf.Regions)
+				sameFullState(t, f, fast, slow)
+				if f%37 == 0 {
+					sameRankLists(t, f, fast, slow)
+				}
+			}
+			if started == 0 || (!restart && ended == 0) || regions == 0 {
+				t.Fatalf("restart %v r %d: %d alarms started, %d ended, %d regions: the change must alarm", restart, r, started, ended, regions)
+			}
+		}
+	}
+}
+
+// sameFullState checks the per-stream state and the local statistics agree.
+func sameFullState(t *testing.T, f int, a, b *Engine) {
+	t.Helper()
+	for name, pair := range map[string][2][]int32{"last": {a.last, b.last}, "zeroU": {a.zeroU, b.zeroU}, "zeroD": {a.zeroD, b.zeroD}} {
+		if !slices.Equal(pair[0], pair[1]) {
+			t.Fatalf("frame %d: %s differs", f, name)
+		}
+	}
+	if !slices.Equal(a.u, b.u) || !slices.Equal(a.dn, b.dn) {
+		t.Fatalf("frame %d: U or D differs", f)
+	}
+	if la, lb := a.Local(nil), b.Local(nil); !slices.Equal(la, lb) {
+		t.Fatalf("frame %d: local statistics differ", f)
+	}
+}
+
+// sameRankLists rebuilds the fast engine's rank index (through topK) and
+// checks its keys, bucket lists and their order equal the general path's.
+func sameRankLists(t *testing.T, f int, a, b *Engine) {
+	t.Helper()
+	ka := a.rank.topK(a.m, a.scrID, a.scrKey, math.Inf(-1))
+	kb := b.rank.topK(b.m, b.scrID, b.scrKey, math.Inf(-1))
+	if ka != kb || !slices.Equal(a.scrID[:ka], b.scrID[:kb]) || !slices.Equal(a.scrKey[:ka], b.scrKey[:kb]) {
+		t.Fatalf("frame %d: topK differs after the rebuild", f)
+	}
+	x, y := a.rank, b.rank
+	if !slices.Equal(x.key, y.key) || !slices.Equal(x.head, y.head) || !slices.Equal(x.count, y.count) ||
+		!slices.Equal(x.next, y.next) || !slices.Equal(x.prev, y.prev) || !slices.Equal(x.slot, y.slot) ||
+		x.ovHead != y.ovHead || x.ovCount != y.ovCount || x.bottom != y.bottom {
+		t.Fatalf("frame %d: rank lists differ after the rebuild", f)
+	}
+}
+
+// TestFullFastPathRejectsNaN checks an unmarked NaN or infinity is refused
+// on the fast path before any state changes, as on the general path.
+func TestFullFastPathRejectsNaN(t *testing.T) {
+	cfg := Config{Width: 8, Height: 8, Budget: 1, TopR: 3, Policy: Full, Seed: 1}
+	e := mustEngine(t, cfg)
+	rng := rand.New(rand.NewPCG(1, 1))
+	z := make([]float32, cfg.Streams())
+	for range 20 {
+		stepNormal(t, e, rng, z, nil, 0)
+	}
+	u, frames := slices.Clone(e.u), e.Frames()
+	for _, bad := range []float32{float32(math.NaN()), float32(math.Inf(1)), float32(math.Inf(-1))} {
+		z[17] = bad
+		if _, err := e.Step(z, nil); err == nil || !strings.Contains(err.Error(), "mark it missing") {
+			t.Fatalf("value %v: error %v, want a refusal", bad, err)
+		}
+		missing := make([]bool, len(z))
+		missing[3] = true // another slot missing: 17 is still refused
+		if _, err := e.Step(z, missing); err == nil {
+			t.Fatalf("value %v in an unmarked slot was accepted", bad)
+		}
+	}
+	if !slices.Equal(u, e.u) || e.Frames() != frames {
+		t.Fatal("a refused step changed the state")
 	}
 }

@@ -27,6 +27,11 @@ type rankIndex struct {
 	key        []float64
 	ovHead     int32
 	ovCount    int
+
+	// stale, when set, rebuilds keys and lists: the full policy's fast
+	// path stops maintaining them (see Engine.stepFull), and topK calls it
+	// first so only the frames that rank streams pay for the order.
+	stale func()
 }
 
 const ringBuckets = 1 << 14
@@ -50,17 +55,23 @@ func newRankIndex(m int, c float64) *rankIndex {
 
 // reset puts every stream at the given key (all statistics equal).
 func (x *rankIndex) reset(key float64) {
+	x.bottom = x.bucketOf(key)
+	x.clearLists()
+	for i := len(x.key) - 1; i >= 0; i-- {
+		x.key[i] = key
+		x.link(int32(i), x.bottom)
+	}
+}
+
+// clearLists empties every bucket and the overflow, keeping the window.
+func (x *rankIndex) clearLists() {
 	for i := range x.head {
 		x.head[i] = -1
 		x.count[i] = 0
 	}
 	x.ovHead, x.ovCount = -1, 0
-	x.bottom = x.bucketOf(key)
 	x.top = x.bottom
-	for i := len(x.key) - 1; i >= 0; i-- {
-		x.key[i] = key
-		x.link(int32(i), x.bottom)
-	}
+	x.stale = nil
 }
 
 func (x *rankIndex) bucketOf(k float64) int64 { return int64(math.Floor(k * x.invW)) }
@@ -88,7 +99,12 @@ func (x *rankIndex) slide(low float64) {
 func (x *rankIndex) set(i int32, k float64) {
 	x.unlink(i)
 	x.key[i] = k
-	b := x.bucketOf(k)
+	x.place(i)
+}
+
+// place links unlinked stream i at the head of the bucket of its key.
+func (x *rankIndex) place(i int32) {
+	b := x.bucketOf(x.key[i])
 	if b < x.bottom {
 		b = x.bottom // rounding below -c*t
 	}
@@ -150,6 +166,9 @@ func (x *rankIndex) unlink(i int32) {
 // the number written (min(k, m)). Order within the result is arbitrary.
 // Streams whose key is below floor stop the walk early (pass -Inf for none).
 func (x *rankIndex) topK(k int, ids []int32, keys []float64, floor float64) int {
+	if x.stale != nil {
+		x.stale()
+	}
 	n := 0
 	take := func(h int32, cnt int) bool {
 		// Append the whole list; report whether we have enough.
