@@ -322,3 +322,75 @@ func TestTailExtrapolation128(t *testing.T) {
 		t.Errorf("direct ARL0 %.0f ± %.0f at the extrapolated limit, want 1e4 within 15%%", v.ARL0, v.SE)
 	}
 }
+
+// TestBootstrapPoolOfNormalFrames: a bootstrap of a small pool of exact
+// N(0,1) frames must give about the limit of the normal model itself. Drawn
+// without the cyclic shift each stream sees only its own few values and the
+// top-r sum seeks out the streams whose values happen to be extreme, which
+// raised the limit far above the normal one (fill's doc has the figures).
+func TestBootstrapPoolOfNormalFrames(t *testing.T) {
+	rng := rand.New(rand.NewPCG(8, 8))
+	pool := make([][]float32, 30)
+	for j := range pool {
+		pool[j] = make([]float32, 256)
+		for i := range pool[j] {
+			pool[j][i] = float32(rng.NormFloat64())
+		}
+	}
+	cfg := Config{Width: 16, Height: 16, Budget: 8, TopR: 4, Shift: 2, Policy: Adaptive}
+	spec := CalibrationSpec{Config: cfg, TargetARL0: 200, Paths: 200, Verify: -1, Burnin: 300, Block: 1, Seed: 3}
+	normal, err := Calibrate(context.Background(), spec)
+	if err != nil {
+		t.Fatal(err)
+	}
+	spec.Bootstrap = pool
+	boot, err := Calibrate(context.Background(), spec)
+	if err != nil {
+		t.Fatal(err)
+	}
+	t.Logf("normal h %.3f, bootstrap of %d normal frames h %.3f", normal.Limit, len(pool), boot.Limit)
+	// Tolerance: common practice, about three times the two limits'
+	// Monte Carlo spread at 200 paths.
+	if d := boot.Limit - normal.Limit; math.Abs(d) > 0.6 {
+		t.Errorf("bootstrap limit %.3f is %.3f from the normal limit %.3f, want within 0.6", boot.Limit, d, normal.Limit)
+	}
+}
+
+// TestBootstrapBlocks: frames come in runs of Block consecutive pool
+// frames, each run moved by one cyclic shift of the grid.
+func TestBootstrapBlocks(t *testing.T) {
+	const gw, gh, n = 5, 4, 40
+	pool := make([][]float32, n)
+	for j := range pool {
+		pool[j] = make([]float32, gw*gh)
+		for i := range pool[j] {
+			pool[j][i] = float32(j*1000 + i) // frame and stream, readable back
+		}
+	}
+	r := &simRun{boot: pool, gw: gw, gh: gh, block: 7}
+	idx := make([]int32, gw*gh)
+	for i := range idx {
+		idx[i] = int32(i)
+	}
+	var b pathBuffers
+	rng := rand.New(rand.NewPCG(1, 2))
+	prevFrame, prevShift := -1, -1
+	for t0 := 0; t0 < 70; t0++ {
+		z, _ := b.fill(idx, rng, r)
+		j := int(z[0]) / 1000
+		// Stream 0 reads grid cell (dx, dy); every other stream must read
+		// its own cell moved by the same shift, wrapping at the edges.
+		s0 := int(z[0]) % 1000
+		dx, dy := s0%gw, s0/gw
+		for i, v := range z {
+			x, y := (i%gw+dx)%gw, (i/gw+dy)%gh
+			if int(v)/1000 != j || int(v)%1000 != y*gw+x {
+				t.Fatalf("frame %d stream %d read %v, want frame %d cell %d", t0, i, v, j, y*gw+x)
+			}
+		}
+		if t0%7 != 0 && (j != prevFrame+1 || s0 != prevShift) {
+			t.Fatalf("frame %d: pool frame %d shift %d inside a block after %d shift %d", t0, j, s0, prevFrame, prevShift)
+		}
+		prevFrame, prevShift = j, s0
+	}
+}

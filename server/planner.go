@@ -552,12 +552,16 @@ func (s *Server) planBootFrames(ctx context.Context, sess *Session, tile, gw, gh
 	}
 	raw, _, err := review.BootstrapFrames(ctx, src, tile, n, monitor.ModelKind(m.Params.Model), check)
 	if errors.Is(err, review.ErrTooFewReference) {
-		return nil, "", errorf(KindInvalid, "plan: the session has too few good reference frames; a bootstrap needs at least 2")
+		return nil, "", errorf(KindInvalid, "plan: the session has %v", err)
 	}
 	if err != nil {
 		return nil, "", err
 	}
-	note := fmt.Sprintf("limits calibrated on a bootstrap of the session's %d reference frames, standardised with its %s model (real noise and spatial correlation); delays simulated with independent standard normal noise at those limits", len(raw), m.Params.Model)
+	how := fmt.Sprintf("standardised with its %s model", m.Params.Model)
+	if monitor.ModelKind(m.Params.Model) == monitor.SelfStart {
+		how = fmt.Sprintf("each scored by its self-start model against the frames before it (the first %d of %d only start it)", n-len(raw), n)
+	}
+	note := fmt.Sprintf("limits calibrated on a block bootstrap of the session's %d reference frames, %s (real noise, spatial correlation and drift); delays simulated with independent standard normal noise at those limits", len(raw), how)
 	return raw, note, nil
 }
 

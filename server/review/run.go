@@ -230,6 +230,7 @@ func (rv *reviewer) learn(ctx context.Context) error {
 func (rv *reviewer) calibrate(ctx context.Context) error {
 	m := rv.tiler.Streams()
 	var boot [][]float32
+	estimated := false // boot holds estimated-model frames, whose streams must stay put
 	if rv.refStack != nil {
 		for _, raw := range rv.refStack {
 			z := make([]float32, m)
@@ -251,6 +252,7 @@ func (rv *reviewer) calibrate(ctx context.Context) error {
 		}
 		if int64(b)*int64(m) <= 1<<27 {
 			var err error
+			estimated = true
 			if boot, err = estimatedFrames(m, rv.refFrames, b, monitor.ModelKind(rv.p.Model), rv.p.Seed+7); err != nil {
 				return fmt.Errorf("review: %w", err)
 			}
@@ -286,7 +288,7 @@ func (rv *reviewer) calibrate(ctx context.Context) error {
 				paths = defaultPaths
 			}
 			spec := monitor.CalibrationSpec{Config: r.cfg, TargetARL0: r.p.ARL0, Paths: paths, Verify: max(10, paths/2),
-				WorkCap: work, Burnin: r.p.Burnin, Bootstrap: boot, Seed: r.p.Seed + 1}
+				WorkCap: work, Burnin: r.p.Burnin, Bootstrap: boot, FixedStreams: estimated, Seed: r.p.Seed + 1}
 			if rv.h.Calibrating != nil {
 				idx, name := i, r.p.Policy
 				spec.Progress = func(done, total int) { rv.h.Calibrating(idx, name, done, total) }
