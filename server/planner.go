@@ -71,6 +71,12 @@ type planRow struct {
 	FalseAlarms int     `json:"false_alarms"`
 	Missed      int     `json:"missed"`
 	Note        string  `json:"note,omitempty"`
+	// With the bootstrap model: the normal model's limit for the same
+	// target and the ARL0 that limit gives on the bootstrap of the
+	// reference frames (how far off the normal model would be here).
+	NormalLimit  float64 `json:"normal_limit,omitempty"`
+	NormalARL0   float64 `json:"normal_arl0,omitempty"`
+	NormalARL0SE float64 `json:"normal_arl0_se,omitempty"`
 }
 
 // planAdvice is the planner's recommendation.
@@ -101,10 +107,13 @@ type planRecord struct {
 	Changed  int         `json:"changed_streams"`
 	Model    string      `json:"model"` // the in-control model the limits come from
 	Note     string      `json:"note"`
-	Results  []planRow   `json:"results"`
-	Advice   *planAdvice `json:"advice,omitempty"`
-	Started  time.Time   `json:"started"`
-	Seconds  float64     `json:"seconds"`
+	// ModelNote (bootstrap only) compares the bootstrap limits with the
+	// normal model's and says why they differ.
+	ModelNote string      `json:"model_note,omitempty"`
+	Results   []planRow   `json:"results"`
+	Advice    *planAdvice `json:"advice,omitempty"`
+	Started   time.Time   `json:"started"`
+	Seconds   float64     `json:"seconds"`
 }
 
 // planRun is a session's planner in progress.
@@ -360,6 +369,7 @@ func (s *Server) runPlan(ctx context.Context, sess *Session, run *planRun, spec 
 	publishPlan(sess, "running", 0, "")
 	var (
 		res  []monitor.PlanResult
+		cmp  []modelCompare
 		err  error
 		note string
 	)
@@ -367,7 +377,7 @@ func (s *Server) runPlan(ctx context.Context, sess *Session, run *planRun, spec 
 		var boot [][]float32
 		boot, note, err = s.planBootFrames(ctx, sess, req.Tile, spec.Width, spec.Height)
 		if err == nil {
-			res, err = planBootstrap(ctx, spec, boot)
+			res, cmp, err = planBootstrap(ctx, spec, boot)
 		}
 	} else {
 		note = "limits and delays simulated with independent standard normal noise (the plan command's model)"
@@ -382,7 +392,8 @@ func (s *Server) runPlan(ctx context.Context, sess *Session, run *planRun, spec 
 	switch {
 	case err == nil:
 		rec.State, rec.Progress = "done", 1
-		rec.Results = planRows(res)
+		rec.Results = planRows(res, cmp)
+		rec.ModelNote = compareNote(rec.Results, req.ARL0)
 		rec.Note = fmt.Sprintf("%s; %d delay runs and %d calibration paths per policy and budget, seed %d", note, req.Runs, req.Paths, req.Seed)
 		a := advise(rec.Results, req.TargetDelay)
 		rec.Advice = &a
@@ -437,14 +448,76 @@ func finiteOr(v float64) float64 {
 	return v
 }
 
-func planRows(res []monitor.PlanResult) []planRow {
+// planRows turns the planner's results into rows; cmp, when not nil, holds
+// the normal-model comparison of each result.
+func planRows(res []monitor.PlanResult, cmp []modelCompare) []planRow {
 	out := make([]planRow, 0, len(res))
-	for _, r := range res {
-		out = append(out, planRow{Policy: string(r.Policy), Budget: r.Budget, Streams: r.Streams, Limit: finiteOr(r.Limit),
+	for i, r := range res {
+		row := planRow{Policy: string(r.Policy), Budget: r.Budget, Streams: r.Streams, Limit: finiteOr(r.Limit),
 			ARL0: finiteOr(r.ARL0), ARL0SE: finiteOr(r.ARL0SE), ADD: finiteOr(r.ADD), ADDSE: finiteOr(r.ADDSE),
-			FalseAlarms: r.FalseAlarms, Missed: r.Missed, Note: r.Note})
+			FalseAlarms: r.FalseAlarms, Missed: r.Missed, Note: r.Note}
+		if i < len(cmp) {
+			c := cmp[i]
+			row.NormalLimit, row.NormalARL0, row.NormalARL0SE = finiteOr(c.NormalLimit), finiteOr(c.NormalARL0), finiteOr(c.NormalARL0SE)
+		}
+		out = append(out, row)
 	}
 	return out
+}
+
+// compareNote sets the bootstrap limits beside the normal model's and says
+// why they differ, from the ARL0 each normal-model limit gives on the
+// bootstrap of the reference frames. Empty when no row has a comparison.
+func compareNote(rows []planRow, target float64) string {
+	var lo, hi, within, under, over, n int
+	for i, r := range rows {
+		if !(r.NormalLimit > 0) || !(r.NormalARL0 > 0) {
+			continue
+		}
+		n++
+		if n == 1 || r.NormalARL0 < rows[lo].NormalARL0 {
+			lo = i
+		}
+		if n == 1 || r.NormalARL0 > rows[hi].NormalARL0 {
+			hi = i
+		}
+		switch d := r.NormalARL0 - target; {
+		case math.Abs(d) <= 2*r.NormalARL0SE:
+			within++
+		case d < 0:
+			under++
+		default:
+			over++
+		}
+	}
+	if n == 0 {
+		return ""
+	}
+	var b strings.Builder
+	l, h := rows[lo], rows[hi]
+	name := func(r planRow) string {
+		if r.Policy == string(monitor.Full) || r.Policy == string(monitor.Oracle) {
+			return r.Policy
+		}
+		return r.Policy + " at " + pct(r.Budget)
+	}
+	if lo == hi {
+		fmt.Fprintf(&b, "Normal model against the bootstrap of the reference frames: the normal-model limit %.4g (bootstrap: %.4g) would give an ARL0 of %.3g ± %.2g (%s) on these frames, against the target %g.",
+			l.NormalLimit, l.Limit, l.NormalARL0, l.NormalARL0SE, name(l), target)
+	} else {
+		fmt.Fprintf(&b, "Normal model against the bootstrap of the reference frames: the normal-model limits would give an ARL0 of %.3g ± %.2g (%s) to %.3g ± %.2g (%s) on these frames, against the target %g.",
+			l.NormalARL0, l.NormalARL0SE, name(l), h.NormalARL0, h.NormalARL0SE, name(h), target)
+	}
+	switch {
+	case within == n:
+		b.WriteString(" That is the target within two standard errors everywhere: once standardised by the reference model, these frames behave like independent normal noise at this tile size, and the two limits differ only by simulation noise.")
+	case under >= over:
+		fmt.Fprintf(&b, " In %d of %d rows the normal-model limit alarms more often than asked: the real values have heavier tails, spatial correlation or slow drift that independent normal noise lacks, so the bootstrap limit is higher and holds the false-alarm rate the normal model would miss.", under, n)
+	default:
+		fmt.Fprintf(&b, " In %d of %d rows the normal-model limit alarms less often than asked: the real standardised values are lighter in the far tail than a normal (values clipped, quantised or smoothed by the tile means), so the bootstrap limit is lower and catches changes sooner at the same false-alarm rate.", over, n)
+	}
+	b.WriteString(" Both models assume the scene stays as the reference frames showed it; a drift beyond what they held raises false alarms under either limit.")
+	return b.String()
 }
 
 // advise picks, among the sampling policies (not full, not oracle), the
@@ -569,7 +642,11 @@ func (s *Server) planBootFrames(ctx context.Context, sess *Session, tile, gw, gh
 // bootstrap frames instead of the normal model (PlanSpec has no bootstrap
 // field); the delays are then simulated as Plan does, at those limits.
 // Seeds follow Plan's, so with the normal model the two would agree.
-func planBootstrap(ctx context.Context, spec monitor.PlanSpec, boot [][]float32) ([]monitor.PlanResult, error) {
+//
+// Each row also gets the normal model's limit (the one Plan finds) and the
+// ARL0 that limit gives on the bootstrap, so the report can say how far
+// the normal model would be off on these frames.
+func planBootstrap(ctx context.Context, spec monitor.PlanSpec, boot [][]float32) ([]monitor.PlanResult, []modelCompare, error) {
 	m := spec.Width * spec.Height
 	disk := monitor.Disk(spec.Width, spec.Height, spec.Width/2, spec.Height/2, spec.Radius)
 	type job struct {
@@ -580,13 +657,13 @@ func planBootstrap(ctx context.Context, spec monitor.PlanSpec, boot [][]float32)
 	for _, b := range spec.Budgets {
 		q, err := monitor.BudgetStreams(b, m)
 		if err != nil {
-			return nil, err
+			return nil, nil, err
 		}
 		for _, p := range spec.Policies {
 			jobs = append(jobs, job{p, q})
 		}
 	}
-	perJob := 2*spec.Paths + spec.Runs
+	perJob := 5*spec.Paths + spec.Runs // bootstrap and normal calibrations, a check, the delay runs
 	total := perJob * len(jobs)
 	prog := func(base int) func(int, int) {
 		return func(d, _ int) {
@@ -595,13 +672,20 @@ func planBootstrap(ctx context.Context, spec monitor.PlanSpec, boot [][]float32)
 			}
 		}
 	}
-	cache := map[monitor.Policy]monitor.PlanResult{}
-	var out []monitor.PlanResult
+	type kept struct {
+		r monitor.PlanResult
+		c modelCompare
+	}
+	cache := map[monitor.Policy]kept{}
+	var (
+		out []monitor.PlanResult
+		cmp []modelCompare
+	)
 	for n, j := range jobs {
 		base := n * perJob
-		if r, ok := cache[j.p]; ok {
-			r.Budget, r.Streams = float64(j.q)/float64(m), j.q
-			out = append(out, r)
+		if k, ok := cache[j.p]; ok {
+			k.r.Budget, k.r.Streams = float64(j.q)/float64(m), j.q
+			out, cmp = append(out, k.r), append(cmp, k.c)
 			prog(base)(perJob, total)
 			continue
 		}
@@ -615,26 +699,59 @@ func planBootstrap(ctx context.Context, spec monitor.PlanSpec, boot [][]float32)
 			cfg.Compensation, cfg.CompFraction = 1e-12, 0
 			cfg.TopR = min(cfg.TopR, cfg.Budget)
 		}
+		seed := spec.Seed ^ uint64(n+1)*0x9e3779b97f4a7c15
 		cal, err := monitor.Calibrate(ctx, monitor.CalibrationSpec{Config: cfg, TargetARL0: spec.ARL0, Paths: spec.Paths,
-			Bootstrap: boot, Seed: spec.Seed ^ uint64(n+1)*0x9e3779b97f4a7c15, Progress: prog(base)})
+			Bootstrap: boot, Seed: seed, Progress: prog(base)})
 		if err != nil {
-			return nil, fmt.Errorf("plan %s at budget %d: %w", j.p, j.q, err)
+			return nil, nil, fmt.Errorf("plan %s at budget %d: %w", j.p, j.q, err)
+		}
+		c, err := compareNormal(ctx, cfg, spec, boot, seed, prog(base+2*spec.Paths))
+		if err != nil {
+			return nil, nil, fmt.Errorf("plan %s at budget %d: %w", j.p, j.q, err)
 		}
 		cfg.Limit = cal.Limit
 		sc := monitor.Scenario{Width: spec.Width, Height: spec.Height, Radius: spec.Radius, Shift: spec.Shift,
 			Burnin: cal.Burnin, Quiet: min(cal.Burnin, 1000), Runs: spec.Runs, Seed: spec.Seed}
-		res, err := monitor.Simulate(ctx, sc, []monitor.Config{cfg}, prog(base+2*spec.Paths))
+		res, err := monitor.Simulate(ctx, sc, []monitor.Config{cfg}, prog(base+5*spec.Paths))
 		if err != nil {
-			return nil, fmt.Errorf("plan %s at budget %d: %w", j.p, j.q, err)
+			return nil, nil, fmt.Errorf("plan %s at budget %d: %w", j.p, j.q, err)
 		}
 		d := res[0]
 		r := monitor.PlanResult{Policy: j.p, Budget: float64(j.q) / float64(m), Streams: j.q, Limit: cal.Limit,
 			ARL0: cal.VerifiedARL0, ARL0SE: cal.VerifiedSE, ADD: d.ADD, ADDSE: d.ADDSE,
 			FalseAlarms: d.FalseAlarms, Missed: d.Missed, Note: cal.Note}
 		if j.p == monitor.Full || j.p == monitor.Oracle {
-			cache[j.p] = r
+			cache[j.p] = kept{r, c}
 		}
-		out = append(out, r)
+		out, cmp = append(out, r), append(cmp, c)
 	}
-	return out, nil
+	return out, cmp, nil
+}
+
+// modelCompare is a bootstrap row's normal-model counterpart.
+type modelCompare struct {
+	NormalLimit              float64 // the normal model's limit for the same target
+	NormalARL0, NormalARL0SE float64 // that limit's ARL0 on the bootstrap frames
+}
+
+// compareNormal calibrates cfg on the normal model (as Plan does, same
+// seed) and measures the ARL0 that limit gives on the bootstrap frames,
+// counting at most 4 x the target frames per path (censored paths count
+// their frames, as the calibration does).
+func compareNormal(ctx context.Context, cfg monitor.Config, spec monitor.PlanSpec, boot [][]float32, seed uint64, prog func(int, int)) (modelCompare, error) {
+	var c modelCompare
+	cal, err := monitor.Calibrate(ctx, monitor.CalibrationSpec{Config: cfg, TargetARL0: spec.ARL0, Paths: spec.Paths,
+		Seed: seed, Progress: prog})
+	if err != nil {
+		return c, fmt.Errorf("normal-model limit: %w", err)
+	}
+	c.NormalLimit = cal.Limit
+	v, err := monitor.Verify(ctx, monitor.VerifySpec{Config: cfg, Limit: cal.Limit, Paths: spec.Paths,
+		Horizon: int(math.Ceil(4 * spec.ARL0)), Bootstrap: boot, Seed: seed + 7,
+		Progress: func(d, t int) { prog(2*spec.Paths+d, t) }})
+	if err != nil {
+		return c, fmt.Errorf("normal-model limit on the bootstrap: %w", err)
+	}
+	c.NormalARL0, c.NormalARL0SE = v.ARL0, v.SE
+	return c, nil
 }

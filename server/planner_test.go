@@ -254,14 +254,76 @@ func TestAdvice(t *testing.T) {
 	}
 }
 
+// TestPlanBootstrapComparesNormal plans from a session's reference frames
+// and checks each row carries the normal model's limit, the very limit the
+// normal-model plan finds with the same seeds, and that limit's ARL0 on the
+// bootstrap, and that the note explains the comparison.
+func TestPlanBootstrapComparesNormal(t *testing.T) {
+	ts := mustServer(t, Options{})
+	cr := planSession(t, ts, nil)
+	waitReport(t, ts.Server, cr.ID) // the frame size and reference frames are known
+	req := `{"tile":2,"radius":2,"shift":1.5,"arl0":60,"budgets":["20%"],"policies":["adaptive","full"],"runs":6,"paths":12,"model":"bootstrap","seed":3}`
+	if c, b := ts.do(t, "POST", "/api/sessions/"+cr.ID+"/plan", cr.OwnerToken, "application/json", strings.NewReader(req)); c != http.StatusAccepted {
+		t.Fatalf("POST plan: %d %s", c, b)
+	}
+	rec := waitPlan(t, ts, cr.ID, cr.OwnerToken, 3*time.Minute)
+	if rec.State != "done" || rec.Model != "bootstrap" || len(rec.Results) != 2 {
+		t.Fatalf("plan: %s %q, %d rows: %s", rec.State, rec.Model, len(rec.Results), rec.Message)
+	}
+	spec := monitor.PlanSpec{Width: rec.GridW, Height: rec.GridH, Radius: rec.Radius, Shift: 1.5, Budgets: []float64{0.2},
+		Policies: []monitor.Policy{monitor.Adaptive, monitor.Full}, ARL0: 60, TopR: rec.Request.TopR,
+		CompFraction: mustSession(t, ts, cr.ID).metaCopy().Params.Compensation, Runs: 6, Paths: 12, Seed: 3}
+	normal, err := monitor.Plan(context.Background(), spec)
+	if err != nil {
+		t.Fatal(err)
+	}
+	for i, r := range rec.Results {
+		if r.NormalLimit != normal[i].Limit {
+			t.Errorf("%s: normal-model limit %v beside the bootstrap's, the normal-model plan found %v", r.Policy, r.NormalLimit, normal[i].Limit)
+		}
+		if !(r.NormalARL0 > 0) || !(r.NormalARL0SE > 0) || !(r.Limit > 0) {
+			t.Errorf("%s: want a bootstrap limit and the normal limit's ARL0 on the bootstrap: %+v", r.Policy, r)
+		}
+	}
+	t.Log(rec.ModelNote)
+	if !strings.Contains(rec.ModelNote, "normal-model limit") || !strings.Contains(rec.ModelNote, "target 60") {
+		t.Errorf("model note %q does not compare the limits", rec.ModelNote)
+	}
+}
+
+// TestCompareNote checks the explanation follows the measured ARL0s.
+func TestCompareNote(t *testing.T) {
+	row := func(a, se float64) planRow {
+		return planRow{Policy: "adaptive", Budget: 0.03, Limit: 20, NormalLimit: 19, NormalARL0: a, NormalARL0SE: se}
+	}
+	for _, c := range []struct {
+		rows []planRow
+		want string
+	}{
+		{[]planRow{row(980, 30), row(1030, 40)}, "differ only by simulation noise"},
+		{[]planRow{row(600, 30), row(1010, 40)}, "1 of 2 rows the normal-model limit alarms more often"},
+		{[]planRow{row(1600, 30), row(1500, 40)}, "2 of 2 rows the normal-model limit alarms less often"},
+	} {
+		if got := compareNote(c.rows, 1000); !strings.Contains(got, c.want) {
+			t.Errorf("%+v: note %q, want %q", c.rows, got, c.want)
+		}
+	}
+	if got := compareNote([]planRow{{Policy: "adaptive", Limit: 20}}, 1000); got != "" {
+		t.Errorf("no comparison: note %q, want none", got)
+	}
+}
+
 // TestMeasureFurnaceBootstrap is a measurement, not a unit test: run it with
 // SPARSEWATCH_MEASURE=1 go test -v -run TestMeasureFurnaceBootstrap ./server/
 // (a few minutes). It plans the furnace demo (tile 4, adaptive, 3%, shift 2)
 // with the bootstrap of its 150 reference frames and with the normal model,
 // then runs the engine with each limit on fresh in-control frames of the
-// same scene (other noise seeds, frames 150-199: before the change) and
-// measures the ARL0 each limit really gives, counted as the calibration
-// counts it (burn-in, then run lengths with a gap after each alarm).
+// same scene (other noise seeds, one after another) and measures the ARL0
+// each limit really gives, counted as the calibration counts it (burn-in,
+// then run lengths with a gap after each alarm). Two kinds of fresh frames:
+// the whole in-control run of each seed (frames 0-199, the same stretch of
+// the slow wall drift the reference saw, and more), and only the frames
+// after the reference (150-199, where the drift has risen to its crest).
 func TestMeasureFurnaceBootstrap(t *testing.T) {
 	if os.Getenv("SPARSEWATCH_MEASURE") == "" {
 		t.Skip("measurement: set SPARSEWATCH_MEASURE=1")
@@ -290,7 +352,7 @@ func TestMeasureFurnaceBootstrap(t *testing.T) {
 		Policies: []monitor.Policy{monitor.Adaptive}, ARL0: target, TopR: m.Params.TopR, CompFraction: m.Params.Compensation,
 		Runs: 20, Paths: envInt("SPARSEWATCH_PATHS", 200), Seed: 1}
 	t0 := time.Now()
-	bres, err := planBootstrap(context.Background(), spec, boot)
+	bres, bcmp, err := planBootstrap(context.Background(), spec, boot)
 	if err != nil {
 		t.Fatal(err)
 	}
@@ -299,6 +361,7 @@ func TestMeasureFurnaceBootstrap(t *testing.T) {
 		t.Fatal(err)
 	}
 	hB, hN := bres[0].Limit, nres[0].Limit
+	t.Logf("planner's comparison: normal-model limit %.3f gives ARL0 %.0f ± %.0f on the bootstrap", bcmp[0].NormalLimit, bcmp[0].NormalARL0, bcmp[0].NormalARL0SE)
 	t.Logf("planned in %s: bootstrap limit %.3f (simulated ARL0 %.0f ± %.0f), normal limit %.3f (simulated ARL0 %.0f ± %.0f)",
 		time.Since(t0).Round(time.Second), hB, bres[0].ARL0, bres[0].ARL0SE, hN, nres[0].ARL0, nres[0].ARL0SE)
 	// The session's model, learnt from the same reference frames.
@@ -322,14 +385,13 @@ func TestMeasureFurnaceBootstrap(t *testing.T) {
 		cfg.Budget = q
 	}
 	alarms, maxCounted := envInt("SPARSEWATCH_ALARMS", 40), envInt("SPARSEWATCH_MAX_FRAMES", 20000)
-	// The fresh frames are the frames after the reference and before the
-	// change (150-199, where the slow wall drift is near its crest and
-	// nearly flat) of other noise seeds, one seed after another.
+	// The fresh frames are frames from..199 (the change starts at 200) of
+	// other noise seeds, one seed after another.
 	type out struct {
 		arl, se float64
 		n       int
 	}
-	measure := func(h float64, seed0 uint64) out {
+	measure := func(h float64, seed0 uint64, from int) out {
 		md := md.Clone() // each measurement learns on its own frames
 		c := cfg
 		c.Limit = h
@@ -340,7 +402,7 @@ func TestMeasureFurnaceBootstrap(t *testing.T) {
 		burn, gap := monitor.SteadyBurnin(c), max(50, monitor.SteadyBurnin(c)/4)
 		fresh := sc
 		fresh.Seed = seed0
-		i := m.Params.ReferenceFrames
+		i := from
 		raw := make([]float32, tiler.Streams())
 		z := make([]float32, tiler.Streams())
 		miss := make([]bool, tiler.Streams())
@@ -348,7 +410,7 @@ func TestMeasureFurnaceBootstrap(t *testing.T) {
 		step := func() float64 {
 			if i >= 200 { // the change starts at frame 200: next noise seed
 				fresh.Seed++
-				i = m.Params.ReferenceFrames
+				i = from
 			}
 			fresh.FrameInto(img, i)
 			i++
@@ -394,18 +456,26 @@ func TestMeasureFurnaceBootstrap(t *testing.T) {
 			}
 		}
 		a := float64(counted) / float64(max(got, 1))
-		t.Logf("limit %.3f: %d alarms in %d counted frames: ARL0 %.0f", h, got, counted, a)
+		t.Logf("limit %.3f, frames %d-199: %d alarms in %d counted frames: ARL0 %.0f", h, from, got, counted, a)
 		return out{a, a / math.Sqrt(float64(max(got, 1))), got}
 	}
+	froms := []int{0, m.Params.ReferenceFrames}
+	res := make([][2]out, len(froms)) // [window][bootstrap, normal]
 	var wg sync.WaitGroup
-	var rb, rn out
-	wg.Add(2)
-	go func() { defer wg.Done(); rb = measure(hB, 1000) }()
-	go func() { defer wg.Done(); rn = measure(hN, 1000) }()
+	for w, from := range froms {
+		for k, h := range []float64{hB, hN} {
+			wg.Add(1)
+			go func() { defer wg.Done(); res[w][k] = measure(h, 1000, from) }()
+		}
+	}
 	wg.Wait()
 	t.Logf("target ARL0 %g on fresh in-control furnace frames (up to %d alarms or %d counted frames each, seeds from 1000):", target, alarms, maxCounted)
-	t.Logf("  bootstrap limit %.3f: ARL0 %.0f ± %.0f (%+.0f%% from the target)", hB, rb.arl, rb.se, 100*(rb.arl/target-1))
-	t.Logf("  normal    limit %.3f: ARL0 %.0f ± %.0f (%+.0f%% from the target)", hN, rn.arl, rn.se, 100*(rn.arl/target-1))
+	for w, from := range froms {
+		rb, rn := res[w][0], res[w][1]
+		t.Logf(" frames %d-199 of each seed:", from)
+		t.Logf("  bootstrap limit %.3f: ARL0 %.0f ± %.0f (%+.0f%% from the target)", hB, rb.arl, rb.se, 100*(rb.arl/target-1))
+		t.Logf("  normal    limit %.3f: ARL0 %.0f ± %.0f (%+.0f%% from the target)", hN, rn.arl, rn.se, 100*(rn.arl/target-1))
+	}
 }
 
 // envInt reads a measurement setting from the environment.

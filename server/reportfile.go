@@ -71,14 +71,16 @@ func (s *Server) writeReportHTML(buf *bytes.Buffer, sess *Session) error {
 	if rec, ok := loadPlan(sess.dir); ok && rec.State == "done" {
 		for _, r := range rec.Results {
 			pol, _ := monitor.ParsePolicy(r.Policy)
-			in.Plan = append(in.Plan, monitor.PlanResult{Policy: pol, Budget: r.Budget, Streams: r.Streams, Limit: r.Limit,
-				ARL0: r.ARL0, ARL0SE: r.ARL0SE, ADD: r.ADD, ADDSE: r.ADDSE, FalseAlarms: r.FalseAlarms, Missed: r.Missed, Note: r.Note})
+			in.Plan = append(in.Plan, htmlreport.PlanRow{PlanResult: monitor.PlanResult{Policy: pol, Budget: r.Budget, Streams: r.Streams, Limit: r.Limit,
+				ARL0: r.ARL0, ARL0SE: r.ARL0SE, ADD: r.ADD, ADDSE: r.ADDSE, FalseAlarms: r.FalseAlarms, Missed: r.Missed, Note: r.Note},
+				NormalLimit: r.NormalLimit, NormalARL0: r.NormalARL0, NormalARL0SE: r.NormalARL0SE})
 		}
 		in.PlanNote = fmt.Sprintf("%d x %d streams, change of radius %.3g streams (%d streams) shifted by %g, target ARL0 %g. %s.",
 			rec.GridW, rec.GridH, rec.Radius, rec.Changed, rec.Request.Shift, rec.Request.ARL0, rec.Note)
 		if rec.Advice != nil {
 			in.PlanNote += " " + rec.Advice.Text
 		}
+		in.ModelNote = rec.ModelNote
 	}
 	return htmlreport.Write(buf, in)
 }

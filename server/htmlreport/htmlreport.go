@@ -38,8 +38,9 @@ type Input struct {
 	Report    review.Report
 	Series    []Point             // statistic per watched frame (may be thinned)
 	Snapshots map[int]image.Image // frame at each alarm's start, keyed by alarm frame
-	Plan      []monitor.PlanResult
+	Plan      []PlanRow
 	PlanNote  string // how the plan was made (model, runs)
+	ModelNote string // bootstrap plans: the normal model's limits against the bootstrap's, and why they differ
 	Generated time.Time
 }
 
@@ -57,6 +58,7 @@ func Write(w io.Writer, in Input) error {
 		Generated: in.Generated.UTC().Format("2006-01-02 15:04 MST"),
 		Chart:     template.HTML(chartSVG(in.Series, r.Alarms)),
 		PlanNote:  in.PlanNote,
+		ModelNote: in.ModelNote,
 	}
 	full := int64(r.Frames) * int64(r.Width) * int64(r.Height)
 	if full > 0 {
@@ -82,7 +84,7 @@ func Write(w io.Writer, in Input) error {
 		}
 		d.Alarms = append(d.Alarms, av)
 	}
-	plan := append([]monitor.PlanResult(nil), in.Plan...)
+	plan := append([]PlanRow(nil), in.Plan...)
 	sort.SliceStable(plan, func(i, j int) bool {
 		if plan[i].Policy != plan[j].Policy {
 			return plan[i].Policy < plan[j].Policy
@@ -90,6 +92,9 @@ func Write(w io.Writer, in Input) error {
 		return plan[i].Budget < plan[j].Budget
 	})
 	d.Plan = plan
+	for _, p := range plan {
+		d.PlanNormal = d.PlanNormal || p.NormalLimit > 0
+	}
 	if err := page.Execute(w, d); err != nil {
 		return fmt.Errorf("htmlreport: %w", err)
 	}
@@ -103,8 +108,17 @@ type view struct {
 	FullPixels                int64
 	Chart                     template.HTML
 	Alarms                    []alarmView
-	Plan                      []monitor.PlanResult
-	PlanNote                  string
+	Plan                      []PlanRow
+	PlanNormal                bool // some row has a normal-model limit beside it
+	PlanNote, ModelNote       string
+}
+
+// PlanRow is one planner result; with a bootstrap plan it also holds the
+// normal model's limit for the same target and the ARL0 that limit gives
+// on the bootstrap of the reference frames (0: not compared).
+type PlanRow struct {
+	monitor.PlanResult
+	NormalLimit, NormalARL0, NormalARL0SE float64
 }
 
 type alarmView struct {
@@ -238,9 +252,10 @@ figure{margin:10px 0} figcaption{font-size:12px;color:#555} img{image-rendering:
 
 {{if .Plan}}<h2>Budget plan</h2>
 <p class="muted">{{.PlanNote}}</p>
-<table><tr><th>Policy</th><th>Budget</th><th>Limit</th><th>ARL0</th><th>Average delay (frames)</th></tr>
-{{range .Plan}}<tr><td>{{.Policy}}</td><td>{{f "%.3g%%" (mul100 .Budget)}}</td><td>{{f "%.4g" .Limit}}</td><td>{{f "%.4g" .ARL0}} &plusmn; {{f "%.2g" .ARL0SE}}</td><td>{{f "%.3g" .ADD}} &plusmn; {{f "%.2g" .ADDSE}}</td></tr>
-{{end}}</table>{{end}}
+<table id="plan"><tr><th>Policy</th><th>Budget</th><th>Limit</th><th>ARL0</th><th>Average delay (frames)</th>{{if .PlanNormal}}<th>Normal-model limit</th><th>Its ARL0 on the reference frames</th>{{end}}</tr>
+{{range .Plan}}<tr><td>{{.Policy}}</td><td>{{f "%.3g%%" (mul100 .Budget)}}</td><td>{{f "%.4g" .Limit}}</td><td>{{f "%.4g" .ARL0}} &plusmn; {{f "%.2g" .ARL0SE}}</td><td>{{f "%.3g" .ADD}} &plusmn; {{f "%.2g" .ADDSE}}</td>{{if $.PlanNormal}}{{if gt .NormalLimit 0.0}}<td>{{f "%.4g" .NormalLimit}}</td><td>{{f "%.4g" .NormalARL0}} &plusmn; {{f "%.2g" .NormalARL0SE}}</td>{{else}}<td></td><td></td>{{end}}{{end}}</tr>
+{{end}}</table>
+{{if .ModelNote}}<p id="model-note">{{.ModelNote}}</p>{{end}}{{end}}
 
 {{if .R.Errors}}<h2>Inputs that could not be used</h2>
 <table><tr><th>Frame</th><th>File</th><th>Reason</th></tr>{{range .R.Errors}}<tr><td>{{.Frame}}</td><td>{{.File}}</td><td>{{.Reason}}</td></tr>{{end}}</table>{{end}}

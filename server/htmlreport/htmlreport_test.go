@@ -38,8 +38,26 @@ func sampleInput() Input {
 		pts = append(pts, Point{Frame: f, G: float64(f % 37), Limit: 31.5})
 	}
 	return Input{Report: rep, Series: pts, Snapshots: map[int]image.Image{120: img},
-		Plan:      []monitor.PlanResult{{Policy: monitor.Adaptive, Budget: 0.03, Limit: 30, ARL0: 1000, ARL0SE: 40, ADD: 19.5, ADDSE: 0.6}},
+		Plan:      []PlanRow{{PlanResult: monitor.PlanResult{Policy: monitor.Adaptive, Budget: 0.03, Limit: 30, ARL0: 1000, ARL0SE: 40, ADD: 19.5, ADDSE: 0.6}}},
 		Generated: time.Date(2026, 12, 2, 0, 0, 0, 0, time.UTC)}
+}
+
+// TestPlanModelColumns checks a bootstrap plan's rows show the normal
+// model's limit and its ARL0 beside the bootstrap's, with the note.
+func TestPlanModelColumns(t *testing.T) {
+	in := sampleInput()
+	in.Plan[0].NormalLimit, in.Plan[0].NormalARL0, in.Plan[0].NormalARL0SE = 27.25, 612, 31
+	in.ModelNote = "normal model alarms more often"
+	var buf bytes.Buffer
+	if err := Write(&buf, in); err != nil {
+		t.Fatal(err)
+	}
+	doc := buf.String()
+	for _, want := range []string{"<th>Normal-model limit</th>", "<td>27.25</td>", "<td>612 &plusmn; 31</td>", `<p id="model-note">normal model alarms more often</p>`} {
+		if !strings.Contains(doc, want) {
+			t.Errorf("report lacks %q", want)
+		}
+	}
 }
 
 // TestSelfContained checks the file needs nothing from outside: no element
@@ -67,6 +85,9 @@ func TestSelfContained(t *testing.T) {
 		if !strings.Contains(doc, fmt.Sprintf(`<td rowspan="1">%d</td>`, a.Frame)) || !strings.Contains(doc, row) {
 			t.Errorf("alarm at frame %d (box %s) not in the alarm table", a.Frame, row)
 		}
+	}
+	if strings.Contains(doc, "Normal-model limit") {
+		t.Error("a normal-model column without a bootstrap plan")
 	}
 	if !strings.Contains(doc, "still on at the end") || !strings.Contains(doc, "frame007.png") || !strings.Contains(doc, "19.5") {
 		t.Error("open episode, file error or plan row missing")

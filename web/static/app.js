@@ -1786,7 +1786,8 @@
     for (const r of rows) {
       const tr = document.createElement("tr");
       if (a.policy === r.policy && a.streams === r.streams) tr.className = "recommended";
-      const cells = [r.policy, fmt(100 * r.budget, 2) + "%", intText(r.streams), fmt(r.limit, 2),
+      const cells = [r.policy, fmt(100 * r.budget, 2) + "%", intText(r.streams),
+        fmt(r.limit, 2) + (r.normal_limit > 0 ? " (normal model " + fmt(r.normal_limit, 2) + ": ARL0 " + intText(r.normal_arl0) + " here)" : ""),
         r.arl0 > 0 ? intText(r.arl0) + " ± " + intText(r.arl0_se) + " frames" : "–",
         r.add > 0 ? fmt(r.add, 2) + " ± " + fmt(r.add_se, 2) : "none counted"];
       for (const c of cells) { const td = document.createElement("td"); td.textContent = c; tr.appendChild(td); }
@@ -1797,6 +1798,7 @@
     const q = rec.request || {};
     $("plan-note").textContent = rec.grid_w + " × " + rec.grid_h + " streams; change: " + rec.changed_streams +
       " streams shifted by " + q.shift + "; one false alarm per " + intText(q.arl0) + " frames; model: " + rec.model + ". " + (rec.note || "");
+    $("plan-model-note").textContent = rec.model_note || "";
     body.dataset.planState = "done";
     body.dataset.planModel = rec.model || "";
     if (a.streams) body.dataset.planRecommended = String(a.streams); else delete body.dataset.planRecommended;
