@@ -470,9 +470,16 @@ func planRows(res []monitor.PlanResult, cmp []modelCompare) []planRow {
 // bootstrap of the reference frames. Empty when no row has a comparison.
 func compareNote(rows []planRow, target float64) string {
 	var lo, hi, within, under, over, n int
+	seen := map[string]bool{} // full and oracle come once, whatever the budgets
 	for i, r := range rows {
 		if !(r.NormalLimit > 0) || !(r.NormalARL0 > 0) {
 			continue
+		}
+		if r.Policy == string(monitor.Full) || r.Policy == string(monitor.Oracle) {
+			if seen[r.Policy] {
+				continue
+			}
+			seen[r.Policy] = true
 		}
 		n++
 		if n == 1 || r.NormalARL0 < rows[lo].NormalARL0 {
@@ -512,9 +519,9 @@ func compareNote(rows []planRow, target float64) string {
 	case within == n:
 		b.WriteString(" That is the target within two standard errors everywhere: once standardised by the reference model, these frames behave like independent normal noise at this tile size, and the two limits differ only by simulation noise.")
 	case under >= over:
-		fmt.Fprintf(&b, " In %d of %d rows the normal-model limit alarms more often than asked: the real values have heavier tails, spatial correlation or slow drift that independent normal noise lacks, so the bootstrap limit is higher and holds the false-alarm rate the normal model would miss.", under, n)
+		fmt.Fprintf(&b, " In %d of %d cases the normal-model limit alarms more often than asked: the real values have heavier tails, spatial correlation or slow drift that independent normal noise lacks, so the bootstrap limit is higher and holds the false-alarm rate the normal model would miss.", under, n)
 	default:
-		fmt.Fprintf(&b, " In %d of %d rows the normal-model limit alarms less often than asked: the real standardised values are lighter in the far tail than a normal (values clipped, quantised or smoothed by the tile means), so the bootstrap limit is lower and catches changes sooner at the same false-alarm rate.", over, n)
+		fmt.Fprintf(&b, " In %d of %d cases the normal-model limit alarms less often than asked: the real standardised values are lighter in the far tail than a normal (values clipped, quantised or smoothed by the tile means), so the bootstrap limit is lower and catches changes sooner at the same false-alarm rate.", over, n)
 	}
 	b.WriteString(" Both models assume the scene stays as the reference frames showed it; a drift beyond what they held raises false alarms under either limit.")
 	return b.String()

@@ -301,12 +301,18 @@ func TestCompareNote(t *testing.T) {
 		want string
 	}{
 		{[]planRow{row(980, 30), row(1030, 40)}, "differ only by simulation noise"},
-		{[]planRow{row(600, 30), row(1010, 40)}, "1 of 2 rows the normal-model limit alarms more often"},
-		{[]planRow{row(1600, 30), row(1500, 40)}, "2 of 2 rows the normal-model limit alarms less often"},
+		{[]planRow{row(600, 30), row(1010, 40)}, "1 of 2 cases the normal-model limit alarms more often"},
+		{[]planRow{row(1600, 30), row(1500, 40)}, "2 of 2 cases the normal-model limit alarms less often"},
 	} {
 		if got := compareNote(c.rows, 1000); !strings.Contains(got, c.want) {
 			t.Errorf("%+v: note %q, want %q", c.rows, got, c.want)
 		}
+	}
+	full := planRow{Policy: "full", Budget: 0.01, Limit: 30, NormalLimit: 28, NormalARL0: 300, NormalARL0SE: 30}
+	full3 := full
+	full3.Budget = 0.03
+	if got := compareNote([]planRow{full, row(990, 30), full3}, 1000); !strings.Contains(got, "1 of 2 cases") {
+		t.Errorf("full at two budgets is one case: note %q", got)
 	}
 	if got := compareNote([]planRow{{Policy: "adaptive", Limit: 20}}, 1000); got != "" {
 		t.Errorf("no comparison: note %q, want none", got)

@@ -252,8 +252,8 @@ figure{margin:10px 0} figcaption{font-size:12px;color:#555} img{image-rendering:
 
 {{if .Plan}}<h2>Budget plan</h2>
 <p class="muted">{{.PlanNote}}</p>
-<table id="plan"><tr><th>Policy</th><th>Budget</th><th>Limit</th><th>ARL0</th><th>Average delay (frames)</th>{{if .PlanNormal}}<th>Normal-model limit</th><th>Its ARL0 on the reference frames</th>{{end}}</tr>
-{{range .Plan}}<tr><td>{{.Policy}}</td><td>{{f "%.3g%%" (mul100 .Budget)}}</td><td>{{f "%.4g" .Limit}}</td><td>{{f "%.4g" .ARL0}} &plusmn; {{f "%.2g" .ARL0SE}}</td><td>{{f "%.3g" .ADD}} &plusmn; {{f "%.2g" .ADDSE}}</td>{{if $.PlanNormal}}{{if gt .NormalLimit 0.0}}<td>{{f "%.4g" .NormalLimit}}</td><td>{{f "%.4g" .NormalARL0}} &plusmn; {{f "%.2g" .NormalARL0SE}}</td>{{else}}<td></td><td></td>{{end}}{{end}}</tr>
+<table id="plan"><tr><th>Policy</th><th>Budget</th><th>Limit</th><th>ARL0</th><th>Average delay (frames)</th>{{if .PlanNormal}}<th>Normal-model limit</th><th>Its ARL0 on the bootstrap of the reference frames</th>{{end}}</tr>
+{{range .Plan}}<tr><td>{{.Policy}}</td><td>{{f "%.3g%%" (mul100 .Budget)}}</td><td>{{f "%.4g" .Limit}}</td><td>{{f "%.4g" .ARL0}} &plusmn; {{f "%.2g" .ARL0SE}}</td><td>{{if gt .ADD 0.0}}{{f "%.3g" .ADD}} &plusmn; {{f "%.2g" .ADDSE}}{{else}}none counted{{end}}</td>{{if $.PlanNormal}}{{if gt .NormalLimit 0.0}}<td>{{f "%.4g" .NormalLimit}}</td><td>{{f "%.4g" .NormalARL0}} &plusmn; {{f "%.2g" .NormalARL0SE}}</td>{{else}}<td></td><td></td>{{end}}{{end}}</tr>
 {{end}}</table>
 {{if .ModelNote}}<p id="model-note">{{.ModelNote}}</p>{{end}}{{end}}
 

@@ -48,12 +48,13 @@ func TestPlanModelColumns(t *testing.T) {
 	in := sampleInput()
 	in.Plan[0].NormalLimit, in.Plan[0].NormalARL0, in.Plan[0].NormalARL0SE = 27.25, 612, 31
 	in.ModelNote = "normal model alarms more often"
+	in.Plan = append(in.Plan, PlanRow{PlanResult: monitor.PlanResult{Policy: monitor.Random, Budget: 0.03, Limit: 31, ARL0: 990, ARL0SE: 40, ADD: -1, ADDSE: -1}})
 	var buf bytes.Buffer
 	if err := Write(&buf, in); err != nil {
 		t.Fatal(err)
 	}
 	doc := buf.String()
-	for _, want := range []string{"<th>Normal-model limit</th>", "<td>27.25</td>", "<td>612 &plusmn; 31</td>", `<p id="model-note">normal model alarms more often</p>`} {
+	for _, want := range []string{"<th>Normal-model limit</th>", "<td>27.25</td>", "<td>612 &plusmn; 31</td>", `<p id="model-note">normal model alarms more often</p>`, "<td>none counted</td>"} {
 		if !strings.Contains(doc, want) {
 			t.Errorf("report lacks %q", want)
 		}
