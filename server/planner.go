@@ -465,6 +465,12 @@ func planRows(res []monitor.PlanResult, cmp []modelCompare) []planRow {
 	return out
 }
 
+// budgetFree says whether a policy's result is the same at every budget
+// (full reads everything, oracle exactly the changed streams).
+func budgetFree(policy string) bool {
+	return policy == string(monitor.Full) || policy == string(monitor.Oracle)
+}
+
 // compareNote sets the bootstrap limits beside the normal model's and says
 // why they differ, from the ARL0 each normal-model limit gives on the
 // bootstrap of the reference frames. Empty when no row has a comparison.
@@ -475,7 +481,7 @@ func compareNote(rows []planRow, target float64) string {
 		if !(r.NormalLimit > 0) || !(r.NormalARL0 > 0) {
 			continue
 		}
-		if r.Policy == string(monitor.Full) || r.Policy == string(monitor.Oracle) {
+		if budgetFree(r.Policy) {
 			if seen[r.Policy] {
 				continue
 			}
@@ -503,7 +509,7 @@ func compareNote(rows []planRow, target float64) string {
 	var b strings.Builder
 	l, h := rows[lo], rows[hi]
 	name := func(r planRow) string {
-		if r.Policy == string(monitor.Full) || r.Policy == string(monitor.Oracle) {
+		if budgetFree(r.Policy) {
 			return r.Policy
 		}
 		return r.Policy + " at " + pct(r.Budget)
@@ -560,7 +566,7 @@ func advise(rows []planRow, target float64) planAdvice {
 	}
 	for i := range rows {
 		r := &rows[i]
-		if r.Policy == string(monitor.Full) || r.Policy == string(monitor.Oracle) || !(r.ADD > 0) {
+		if budgetFree(r.Policy) || !(r.ADD > 0) {
 			continue
 		}
 		if target > 0 && r.ADD > target {
@@ -727,7 +733,7 @@ func planBootstrap(ctx context.Context, spec monitor.PlanSpec, boot [][]float32)
 		r := monitor.PlanResult{Policy: j.p, Budget: float64(j.q) / float64(m), Streams: j.q, Limit: cal.Limit,
 			ARL0: cal.VerifiedARL0, ARL0SE: cal.VerifiedSE, ADD: d.ADD, ADDSE: d.ADDSE,
 			FalseAlarms: d.FalseAlarms, Missed: d.Missed, Note: cal.Note}
-		if j.p == monitor.Full || j.p == monitor.Oracle {
+		if budgetFree(string(j.p)) {
 			cache[j.p] = kept{r, c}
 		}
 		out, cmp = append(out, r), append(cmp, c)
